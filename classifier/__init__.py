@@ -1,0 +1,1 @@
+"""Decisions and side effects: manifests, training, scoring, the store, the CLI."""

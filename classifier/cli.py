@@ -1,0 +1,95 @@
+"""The `callsieve` command. Each verb parses its arguments and calls one API function."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import traceback
+from collections.abc import Sequence
+
+from callsieve.features._validation import ParameterError
+
+from .errors import InputError
+
+__all__ = ["main", "build_parser"]
+
+EXIT_OK, EXIT_FAILED, EXIT_INPUT = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a wrong call is one line and exit 2 (SPEC §3)."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        raise InputError(
+            f"{message} (see 'callsieve {self.prog.split()[-1]} --help')"
+            if " " in self.prog
+            else f"{message} (see 'callsieve --help')"
+        )
+
+
+def _cmd_calibrate(args: argparse.Namespace) -> int:
+    from .calibrate import calibration_summary, format_calibration_summary
+
+    summary = calibration_summary(args.manifest)
+    if args.json:
+        json.dump(summary, sys.stdout, indent=2, ensure_ascii=False)
+        sys.stdout.write("\n")
+    else:
+        print(format_calibration_summary(summary))
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every verb."""
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--debug", action="store_true", help="show a traceback on errors")
+    common.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    parser = _Parser(
+        prog="callsieve",
+        description="Find animal calls in long-term underwater recordings, in calibrated units.",
+        parents=[common],
+    )
+    verbs = parser.add_subparsers(dest="verb", metavar="VERB", parser_class=_Parser)
+    verbs.required = True
+
+    p = verbs.add_parser(
+        "calibrate",
+        parents=[common],
+        help="check a deployment: files, effort, gaps, system response and clip level",
+    )
+    p.add_argument("manifest", metavar="MANIFEST", help="deployment manifest (TOML)")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_calibrate)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit status (0 done, 1 failed, 2 bad input)."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    debug = "--debug" in argv
+    try:
+        args = build_parser().parse_args(argv)
+        return int(args.func(args))
+    except (InputError, ParameterError) as exc:
+        if debug:
+            traceback.print_exc()
+        print(f"callsieve: error: {exc}", file=sys.stderr)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print(
+            "callsieve: error: interrupted; run the same command again to carry on", file=sys.stderr
+        )
+        return EXIT_FAILED
+    except Exception as exc:  # the work failed: one line unless --debug
+        if debug:
+            traceback.print_exc()
+        print(
+            f"callsieve: error: {type(exc).__name__}: {exc} (run with --debug for details)",
+            file=sys.stderr,
+        )
+        return EXIT_FAILED
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,521 @@
+"""Deployment manifests (SPEC §1): load, validate, find the files and their times.
+
+One manifest describes one recorder at one place for one stretch of time. Loading it
+checks every field, reads the calibration tables, lists the sound files, parses each
+file's UTC start from its name and reads its header. Files that cannot be used are
+kept as faults, so one bad file never stops the others.
+"""
+
+from __future__ import annotations
+
+import csv
+import difflib
+import re
+import tomllib
+from collections import Counter
+from dataclasses import dataclass, field
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import numpy as np
+from callsieve.features.calibration import RecordingChain, ResponseCurve
+from callsieve.features.propagation import Seawater
+from callsieve.features.streaming import AudioInfo, AudioReadError, audio_info
+
+from .errors import InputError
+
+__all__ = [
+    "Site",
+    "RecordedFile",
+    "FileFault",
+    "Gap",
+    "Deployment",
+    "load_deployment",
+    "parse_file_start",
+    "timestamp_regex",
+    "read_response_table",
+]
+
+_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
+_KNOWN = {
+    "deployment": {"name", "audio_dir", "glob", "timestamp_format", "channel"},
+    "site": {"latitude", "longitude", "depth_m", "temperature_c", "salinity_psu", "ph"},
+    "calibration": {
+        "full_scale_volts",
+        "preamp_gain_db",
+        "preamp_gain_csv",
+        "hydrophone_sensitivity_db",
+        "hydrophone_sensitivity_csv",
+    },
+}
+# Times from file names have one-second resolution at best; differences below this
+# between one file's end and the next one's start are neither gaps nor overlaps.
+GAP_TOLERANCE_S = 1.0
+
+
+@dataclass(frozen=True)
+class Site:
+    """Where the recorder sat, and the water around it (defaults 4 °C, 35 PSU, pH 8)."""
+
+    latitude: float | None = None
+    longitude: float | None = None
+    depth_m: float | None = None
+    temperature_c: float = 4.0
+    salinity_psu: float = 35.0
+    ph: float = 8.0
+
+    @property
+    def water(self) -> Seawater:
+        """Water properties for absorption, at the recorder's depth (0 m if unknown)."""
+        return Seawater(self.temperature_c, self.salinity_psu, self.ph, self.depth_m or 0.0)
+
+
+@dataclass(frozen=True)
+class RecordedFile:
+    """One usable sound file of a deployment.
+
+    Attributes
+    ----------
+    path : Path
+    name : str, path relative to the audio folder (as label tables write it)
+    start_utc : datetime, UTC start parsed from the name
+    info : AudioInfo
+    size_bytes : int
+    mtime_ns : int
+    """
+
+    path: Path
+    name: str
+    start_utc: datetime
+    info: AudioInfo
+    size_bytes: int
+    mtime_ns: int
+
+    @property
+    def duration_s(self) -> float:
+        """Duration, s."""
+        return self.info.duration_s
+
+    @property
+    def end_utc(self) -> datetime:
+        """UTC end of the last sample."""
+        return self.start_utc + timedelta(seconds=self.duration_s)
+
+
+@dataclass(frozen=True)
+class FileFault:
+    """A file that matched the manifest but cannot be used, and why."""
+
+    name: str
+    error: str
+
+
+@dataclass(frozen=True)
+class Gap:
+    """Time without recording between two consecutive files (negative: an overlap)."""
+
+    after_file: str
+    start_utc: datetime
+    seconds: float
+
+
+@dataclass(frozen=True, eq=False)
+class Deployment:
+    """A loaded, validated manifest with its files in time order.
+
+    Attributes
+    ----------
+    name : str
+    manifest_path : Path
+    audio_dir : Path
+    glob : str
+    timestamp_format : str
+    channel : int
+    site : Site
+    chain : RecordingChain
+    files : list of RecordedFile, usable files sorted by start
+    faults : list of FileFault, files skipped with the reason
+    sample_rate_hz : int, Hz, the rate of the usable files
+    """
+
+    name: str
+    manifest_path: Path
+    audio_dir: Path
+    glob: str
+    timestamp_format: str
+    channel: int
+    site: Site
+    chain: RecordingChain
+    files: list[RecordedFile] = field(default_factory=list)
+    faults: list[FileFault] = field(default_factory=list)
+    sample_rate_hz: int = 0
+
+    @property
+    def first_start_utc(self) -> datetime | None:
+        """Start of the earliest usable file."""
+        return self.files[0].start_utc if self.files else None
+
+    @property
+    def last_end_utc(self) -> datetime | None:
+        """End of the latest-ending usable file."""
+        return max(f.end_utc for f in self.files) if self.files else None
+
+    @property
+    def recorded_s(self) -> float:
+        """Recording effort, s: the union of all files' time spans (overlaps count once)."""
+        total, reach = 0.0, None
+        for f in self.files:
+            start, end = f.start_utc, f.end_utc
+            if reach is None or start >= reach:
+                total += (end - start).total_seconds()
+                reach = end
+            elif end > reach:
+                total += (end - reach).total_seconds()
+                reach = end
+        return total
+
+    def gaps(self, tolerance_s: float = GAP_TOLERANCE_S) -> list[Gap]:
+        """Silences longer than ``tolerance_s`` (s) between consecutive files."""
+        return [g for g in self._joins() if g.seconds > tolerance_s]
+
+    def overlaps(self, tolerance_s: float = GAP_TOLERANCE_S) -> list[Gap]:
+        """Joins where a file starts more than ``tolerance_s`` (s) before the previous ends."""
+        return [g for g in self._joins() if g.seconds < -tolerance_s]
+
+    def _joins(self) -> list[Gap]:
+        return [
+            Gap(a.name, a.end_utc, (b.start_utc - a.end_utc).total_seconds())
+            for a, b in zip(self.files, self.files[1:], strict=False)
+        ]
+
+
+# --- timestamps -------------------------------------------------------------------
+
+_DIRECTIVES = {
+    "Y": r"\d{4}",
+    "y": r"\d{2}",
+    "m": r"\d{2}",
+    "d": r"\d{2}",
+    "H": r"\d{2}",
+    "M": r"\d{2}",
+    "S": r"\d{2}",
+    "j": r"\d{3}",
+    "f": r"\d{1,6}",
+    "b": r"[A-Za-z]{3}",
+    "B": r"[A-Za-z]{3,9}",
+    "z": r"(?:Z|[+-]\d{2}:?\d{2})",
+    "%": "%",
+}
+
+
+def timestamp_regex(timestamp_format: str) -> re.Pattern[str]:
+    """A regular expression that finds ``timestamp_format`` (strftime) inside a name.
+
+    Raises
+    ------
+    ValueError
+        For a directive that cannot appear in a time stamp of a file name.
+    """
+    parts, i = [], 0
+    while i < len(timestamp_format):
+        ch = timestamp_format[i]
+        if ch == "%":
+            if i + 1 >= len(timestamp_format):
+                raise ValueError("ends with a lone '%'")
+            d = timestamp_format[i + 1]
+            if d not in _DIRECTIVES:
+                raise ValueError(
+                    f"directive %{d} is not supported; use %Y %y %m %d %H %M %S %j %f %z"
+                )
+            parts.append(_DIRECTIVES[d])
+            i += 2
+        else:
+            parts.append(re.escape(ch))
+            i += 1
+    if not any(d in timestamp_format for d in ("%Y", "%y")):
+        raise ValueError("needs a year (%Y or %y)")
+    return re.compile("(?=(" + "".join(parts) + "))")
+
+
+def parse_file_start(name: str, timestamp_format: str) -> datetime | None:
+    """UTC start time found in the file name ``name``, or None if no match parses.
+
+    Times without a zone are taken as UTC; with ``%z`` they are converted to UTC.
+    """
+    pattern = timestamp_regex(timestamp_format)
+    base = Path(name).name
+    for match in pattern.finditer(base):
+        try:
+            stamp = datetime.strptime(match.group(1), timestamp_format)
+        except ValueError:
+            continue
+        if stamp.tzinfo is None:
+            return stamp.replace(tzinfo=UTC)
+        return stamp.astimezone(UTC)
+    return None
+
+
+# --- the manifest ------------------------------------------------------------------
+
+
+def read_response_table(path: Path, value_column: str, where: str) -> ResponseCurve:
+    """Read a calibration table with columns ``frequency_hz`` and ``value_column`` (dB).
+
+    Raises
+    ------
+    InputError
+        Naming the file, the row and what is wrong.
+    """
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.DictReader(fh))
+            columns = rows[0].keys() if rows else []
+    except OSError as exc:
+        raise InputError(f"{where}: cannot read {path}: {exc.strerror}") from None
+    for col in ("frequency_hz", value_column):
+        if col not in columns:
+            raise InputError(
+                f"{path}: needs the columns frequency_hz,{value_column} in its first line "
+                f"(found: {','.join(columns) or 'nothing'})"
+            )
+    freq, level = [], []
+    for row_no, row in enumerate(rows, start=2):
+        try:
+            f, v = float(row["frequency_hz"]), float(row[value_column])
+        except (TypeError, ValueError):
+            raise InputError(
+                f"{path}: row {row_no}: frequency_hz and {value_column} must be numbers"
+            ) from None
+        if not (np.isfinite(f) and np.isfinite(v)) or f <= 0:
+            raise InputError(f"{path}: row {row_no}: frequency_hz must be > 0 and values finite")
+        if freq and f <= freq[-1]:
+            raise InputError(
+                f"{path}: row {row_no}: frequency_hz {f:g} does not increase "
+                f"(previous row {freq[-1]:g}); sort the table by frequency"
+            )
+        freq.append(f)
+        level.append(v)
+    return ResponseCurve(np.array(freq), np.array(level))
+
+
+def _number(
+    table: dict,
+    key: str,
+    where: str,
+    lo: float | None = None,
+    hi: float | None = None,
+    positive: bool = False,
+) -> float:
+    value = table[key]
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise InputError(f"{where} {key}: must be a number, got {value!r}")
+    value = float(value)
+    if not np.isfinite(value) or (positive and value <= 0):
+        raise InputError(
+            f"{where} {key}: must be a finite number{' > 0' if positive else ''}, got {value:g}"
+        )
+    if (lo is not None and value < lo) or (hi is not None and value > hi):
+        raise InputError(f"{where} {key}: {value:g} is outside {lo:g} .. {hi:g}")
+    return value
+
+
+def _curve(
+    cal: dict, flat_key: str, csv_key: str, value_column: str, base: Path, where: str, what: str
+) -> ResponseCurve:
+    has_flat, has_csv = flat_key in cal, csv_key in cal
+    if has_flat and has_csv:
+        raise InputError(f"{where} {flat_key} and {csv_key}: give one of them, not both")
+    if not (has_flat or has_csv):
+        raise InputError(f"{where} {flat_key}: missing; give {flat_key} ({what}) or {csv_key}")
+    if has_flat:
+        return ResponseCurve.flat(_number(cal, flat_key, where))
+    if not isinstance(cal[csv_key], str):
+        raise InputError(f"{where} {csv_key}: must be a file path in quotes")
+    return read_response_table(base / cal[csv_key], value_column, f"{where} {csv_key}")
+
+
+def _check_keys(doc: dict, path: Path) -> None:
+    for table, value in doc.items():
+        if table not in _KNOWN:
+            hint = difflib.get_close_matches(table, _KNOWN, n=1)
+            raise InputError(
+                f"{path}: [{table}]: unknown table"
+                + (
+                    f"; did you mean [{hint[0]}]?"
+                    if hint
+                    else "; expected [deployment], [site], [calibration]"
+                )
+            )
+        if not isinstance(value, dict):
+            raise InputError(f"{path}: {table}: must be a table ([{table}])")
+        for key in value:
+            if key not in _KNOWN[table]:
+                hint = difflib.get_close_matches(key, _KNOWN[table], n=1)
+                raise InputError(
+                    f"{path}: [{table}] {key}: unknown field"
+                    + (
+                        f"; did you mean {hint[0]}?"
+                        if hint
+                        else f"; known: {', '.join(sorted(_KNOWN[table]))}"
+                    )
+                )
+
+
+def load_deployment(manifest_path: str | Path) -> Deployment:
+    """Load and validate a manifest, then list its files with their start times.
+
+    Parameters
+    ----------
+    manifest_path : str or Path, a TOML file in the SPEC §1 format
+
+    Returns
+    -------
+    Deployment
+        Usable files sorted by start; unreadable, truncated or wrong-rate files as faults.
+
+    Raises
+    ------
+    InputError
+        For a missing or contradictory field, a bad calibration table, no matching
+        file, or a file name without a parseable time.
+    """
+    path = Path(manifest_path)
+    try:
+        with open(path, "rb") as fh:
+            doc = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such manifest file") from None
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read: {exc.strerror}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{path}: not valid TOML ({exc})") from None
+    _check_keys(doc, path)
+    base = path.resolve().parent
+
+    if "deployment" not in doc:
+        raise InputError(
+            f"{path}: [deployment]: missing table; it needs name, audio_dir, timestamp_format"
+        )
+    dep = doc["deployment"]
+    where = f"{path}: [deployment]"
+    for key in ("name", "audio_dir", "timestamp_format"):
+        if key not in dep:
+            raise InputError(f"{where} {key}: missing")
+        if not isinstance(dep[key], str) or not dep[key]:
+            raise InputError(f"{where} {key}: must be a non-empty string in quotes")
+    name = dep["name"]
+    if not _NAME.match(name):
+        raise InputError(f"{where} name: {name!r} may hold only letters, digits, '.', '_' and '-'")
+    glob = dep.get("glob", "*.wav")
+    if not isinstance(glob, str) or not glob:
+        raise InputError(f'{where} glob: must be a pattern in quotes, e.g. "*.wav"')
+    channel = dep.get("channel", 0)
+    if isinstance(channel, bool) or not isinstance(channel, int) or channel < 0:
+        raise InputError(f"{where} channel: must be an integer >= 0, got {channel!r}")
+    fmt = dep["timestamp_format"]
+    try:
+        timestamp_regex(fmt)
+    except ValueError as exc:
+        raise InputError(f"{where} timestamp_format: {fmt!r} {exc}") from None
+
+    site_doc = doc.get("site", {})
+    sw = f"{path}: [site]"
+    site = Site(
+        latitude=_number(site_doc, "latitude", sw, -90, 90) if "latitude" in site_doc else None,
+        longitude=_number(site_doc, "longitude", sw, -180, 360)
+        if "longitude" in site_doc
+        else None,
+        depth_m=_number(site_doc, "depth_m", sw, 0, 11000) if "depth_m" in site_doc else None,
+        temperature_c=_number(site_doc, "temperature_c", sw, -3, 40)
+        if "temperature_c" in site_doc
+        else 4.0,
+        salinity_psu=_number(site_doc, "salinity_psu", sw, 0, 50)
+        if "salinity_psu" in site_doc
+        else 35.0,
+        ph=_number(site_doc, "ph", sw, 6, 9.5) if "ph" in site_doc else 8.0,
+    )
+
+    if "calibration" not in doc:
+        raise InputError(
+            f"{path}: [calibration]: missing table; it needs full_scale_volts, a preamp gain "
+            "and a hydrophone sensitivity"
+        )
+    cal = doc["calibration"]
+    cw = f"{path}: [calibration]"
+    if "full_scale_volts" not in cal:
+        raise InputError(
+            f"{cw} full_scale_volts: missing; the 0-to-peak volts of digital full scale"
+        )
+    chain = RecordingChain(
+        _number(cal, "full_scale_volts", cw, positive=True),
+        _curve(
+            cal,
+            "hydrophone_sensitivity_db",
+            "hydrophone_sensitivity_csv",
+            "sensitivity_db",
+            base,
+            cw,
+            "dB re 1 V/µPa",
+        ),
+        _curve(cal, "preamp_gain_db", "preamp_gain_csv", "gain_db", base, cw, "dB"),
+    )
+
+    audio_dir = (base / dep["audio_dir"]).resolve()
+    if not audio_dir.is_dir():
+        raise InputError(f"{where} audio_dir: {audio_dir} is not a folder")
+    files, faults = _scan(audio_dir, glob, fmt, path)
+    deployment = Deployment(name, path, audio_dir, glob, fmt, channel, site, chain)
+    if not files and not faults:
+        raise InputError(f"{where} glob: no file in {audio_dir} matches {glob!r}")
+    rate = Counter(f.info.sample_rate_hz for f in files).most_common(1)
+    deployment_rate = rate[0][0] if rate else 0
+    usable = []
+    for f in files:
+        if f.info.sample_rate_hz != deployment_rate:
+            faults.append(
+                FileFault(
+                    f.name,
+                    f"sample rate {f.info.sample_rate_hz} Hz differs from "
+                    f"the deployment's {deployment_rate} Hz",
+                )
+            )
+        elif channel >= f.info.channels:
+            faults.append(
+                FileFault(
+                    f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist"
+                )
+            )
+        else:
+            usable.append(f)
+    usable.sort(key=lambda f: (f.start_utc, f.name))
+    object.__setattr__(deployment, "files", usable)
+    object.__setattr__(deployment, "faults", sorted(faults, key=lambda x: x.name))
+    object.__setattr__(deployment, "sample_rate_hz", deployment_rate)
+    return deployment
+
+
+def _scan(
+    audio_dir: Path, glob: str, fmt: str, manifest: Path
+) -> tuple[list[RecordedFile], list[FileFault]]:
+    files, faults = [], []
+    for p in sorted(audio_dir.glob(glob)):
+        if not p.is_file():
+            continue
+        name = p.relative_to(audio_dir).as_posix()
+        start = parse_file_start(name, fmt)
+        if start is None:
+            raise InputError(
+                f"{manifest}: [deployment] timestamp_format: {fmt!r} matches no time in the file "
+                f"name {name!r}; fix the pattern or narrow glob"
+            )
+        try:
+            info = audio_info(p)
+        except AudioReadError as exc:
+            faults.append(FileFault(name, exc.reason))
+            continue
+        if info.frames == 0:
+            faults.append(FileFault(name, "holds no samples"))
+            continue
+        st = p.stat()
+        files.append(RecordedFile(p, name, start, info, st.st_size, st.st_mtime_ns))
+    return files, faults
