@@ -44,16 +44,11 @@ def measure(path: str) -> None:
             grid.frame_start_samples(frames, info.samplerate) + context
             <= block.first_sample + block.samples.size
         ]
-        spec = psd_spectrogram(
-            block.samples, info.samplerate, grid, chain, block.first_sample, frames
-        )
+        spec = psd_spectrogram(block.samples, info.samplerate, grid, chain, block.first_sample, frames)
         n_frames += spec.psd_db.shape[1]
     elapsed = time.perf_counter() - t0
     peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(
-        f"{info.duration / 3600:.1f} h  peak RSS {peak_mb:.0f} MB  {elapsed:.1f} s  "
-        f"frames {n_frames}"
-    )
+    print(f"{info.duration / 3600:.1f} h  peak RSS {peak_mb:.0f} MB  {elapsed:.1f} s  frames {n_frames}")
 
 
 def main() -> None:

@@ -120,9 +120,7 @@ def format_calibration_summary(summary: dict[str, Any], max_gaps: int = 10) -> s
     )
     lines.append("  band (Hz)   system (dB re 1 V/µPa)   clip level (dB re 1 µPa, 0-pk)")
     for r in s["response"]:
-        lines.append(
-            f"  {r['nominal_hz']:>9g}   {r['system_db']:>22.2f}   {r['clip_level_db']:>30.2f}"
-        )
+        lines.append(f"  {r['nominal_hz']:>9g}   {r['system_db']:>22.2f}   {r['clip_level_db']:>30.2f}")
     if s["response"]:
         clip = np.array([r["clip_level_db"] for r in s["response"]])
         lines.append(

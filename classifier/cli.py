@@ -7,6 +7,7 @@ import json
 import sys
 import traceback
 from collections.abc import Sequence
+from pathlib import Path
 
 from callsieve.features._validation import ParameterError
 
@@ -40,6 +41,25 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import format_demo_summary, run_demo
+
+    if args.hours <= 0:
+        raise InputError(f"--hours must be > 0, got {args.hours:g}")
+    out = Path(args.outdir)
+    if out.exists() and any(out.iterdir()) and not (out / "scenario.json").exists():
+        raise InputError(f"{out}: folder exists and is not an earlier demo's; choose a new OUTDIR")
+    summary = run_demo(
+        out,
+        seed=args.seed,
+        hours=args.hours,
+        run=not args.no_run,
+        log=None if args.quiet else sys.stderr,
+    )
+    print(format_demo_summary(summary))
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every verb."""
     common = argparse.ArgumentParser(add_help=False)
@@ -61,6 +81,22 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("manifest", metavar="MANIFEST", help="deployment manifest (TOML)")
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_calibrate)
+
+    p = verbs.add_parser(
+        "demo",
+        parents=[common],
+        help="write an invented monitoring scenario with known truth and run the job on it",
+    )
+    p.add_argument("outdir", metavar="OUTDIR", help="folder to write the scenario and results to")
+    p.add_argument("--seed", type=int, default=7, help="random seed (default 7)")
+    p.add_argument(
+        "--hours",
+        type=float,
+        default=12.0,
+        help="span of the survey deployment in hours (default 12)",
+    )
+    p.add_argument("--no-run", action="store_true", help="write the scenario only")
+    p.set_defaults(func=_cmd_demo)
     return parser
 
 
@@ -77,9 +113,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"callsieve: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
     except KeyboardInterrupt:
-        print(
-            "callsieve: error: interrupted; run the same command again to carry on", file=sys.stderr
-        )
+        print("callsieve: error: interrupted; run the same command again to carry on", file=sys.stderr)
         return EXIT_FAILED
     except Exception as exc:  # the work failed: one line unless --debug
         if debug:

@@ -224,9 +224,7 @@ def timestamp_regex(timestamp_format: str) -> re.Pattern[str]:
                 raise ValueError("ends with a lone '%'")
             d = timestamp_format[i + 1]
             if d not in _DIRECTIVES:
-                raise ValueError(
-                    f"directive %{d} is not supported; use %Y %y %m %d %H %M %S %j %f %z"
-                )
+                raise ValueError(f"directive %{d} is not supported; use %Y %y %m %d %H %M %S %j %f %z")
             parts.append(_DIRECTIVES[d])
             i += 2
         else:
@@ -311,9 +309,7 @@ def _number(
         raise InputError(f"{where} {key}: must be a number, got {value!r}")
     value = float(value)
     if not np.isfinite(value) or (positive and value <= 0):
-        raise InputError(
-            f"{where} {key}: must be a finite number{' > 0' if positive else ''}, got {value:g}"
-        )
+        raise InputError(f"{where} {key}: must be a finite number{' > 0' if positive else ''}, got {value:g}")
     if (lo is not None and value < lo) or (hi is not None and value > hi):
         raise InputError(f"{where} {key}: {value:g} is outside {lo:g} .. {hi:g}")
     return value
@@ -393,9 +389,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     base = path.resolve().parent
 
     if "deployment" not in doc:
-        raise InputError(
-            f"{path}: [deployment]: missing table; it needs name, audio_dir, timestamp_format"
-        )
+        raise InputError(f"{path}: [deployment]: missing table; it needs name, audio_dir, timestamp_format")
     dep = doc["deployment"]
     where = f"{path}: [deployment]"
     for key in ("name", "audio_dir", "timestamp_format"):
@@ -422,16 +416,10 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     sw = f"{path}: [site]"
     site = Site(
         latitude=_number(site_doc, "latitude", sw, -90, 90) if "latitude" in site_doc else None,
-        longitude=_number(site_doc, "longitude", sw, -180, 360)
-        if "longitude" in site_doc
-        else None,
+        longitude=_number(site_doc, "longitude", sw, -180, 360) if "longitude" in site_doc else None,
         depth_m=_number(site_doc, "depth_m", sw, 0, 11000) if "depth_m" in site_doc else None,
-        temperature_c=_number(site_doc, "temperature_c", sw, -3, 40)
-        if "temperature_c" in site_doc
-        else 4.0,
-        salinity_psu=_number(site_doc, "salinity_psu", sw, 0, 50)
-        if "salinity_psu" in site_doc
-        else 35.0,
+        temperature_c=_number(site_doc, "temperature_c", sw, -3, 40) if "temperature_c" in site_doc else 4.0,
+        salinity_psu=_number(site_doc, "salinity_psu", sw, 0, 50) if "salinity_psu" in site_doc else 35.0,
         ph=_number(site_doc, "ph", sw, 6, 9.5) if "ph" in site_doc else 8.0,
     )
 
@@ -443,9 +431,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     cal = doc["calibration"]
     cw = f"{path}: [calibration]"
     if "full_scale_volts" not in cal:
-        raise InputError(
-            f"{cw} full_scale_volts: missing; the 0-to-peak volts of digital full scale"
-        )
+        raise InputError(f"{cw} full_scale_volts: missing; the 0-to-peak volts of digital full scale")
     chain = RecordingChain(
         _number(cal, "full_scale_volts", cw, positive=True),
         _curve(
@@ -481,9 +467,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
             )
         elif channel >= f.info.channels:
             faults.append(
-                FileFault(
-                    f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist"
-                )
+                FileFault(f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist")
             )
         else:
             usable.append(f)
@@ -494,9 +478,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     return deployment
 
 
-def _scan(
-    audio_dir: Path, glob: str, fmt: str, manifest: Path
-) -> tuple[list[RecordedFile], list[FileFault]]:
+def _scan(audio_dir: Path, glob: str, fmt: str, manifest: Path) -> tuple[list[RecordedFile], list[FileFault]]:
     files, faults = [], []
     for p in sorted(audio_dir.glob(glob)):
         if not p.is_file():

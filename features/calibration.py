@@ -98,13 +98,9 @@ class RecordingChain:
         )
 
     @classmethod
-    def flat(
-        cls, full_scale_volts: float, sensitivity_db: float, gain_db: float = 0.0
-    ) -> RecordingChain:
+    def flat(cls, full_scale_volts: float, sensitivity_db: float, gain_db: float = 0.0) -> RecordingChain:
         """A chain whose sensitivity (dB re 1 V/µPa) and gain (dB) do not vary with frequency."""
-        return cls(
-            full_scale_volts, ResponseCurve.flat(sensitivity_db), ResponseCurve.flat(gain_db)
-        )
+        return cls(full_scale_volts, ResponseCurve.flat(sensitivity_db), ResponseCurve.flat(gain_db))
 
     @property
     def is_flat(self) -> bool:
@@ -151,9 +147,7 @@ def _correction_fir(chain: RecordingChain, sample_rate_hz: float, inverse: bool)
     return signal.firwin2(taps, grid_hz, gain, fs=sample_rate_hz, window="hann")
 
 
-def pressure_from_samples(
-    samples: np.ndarray, sample_rate_hz: float, chain: RecordingChain
-) -> np.ndarray:
+def pressure_from_samples(samples: np.ndarray, sample_rate_hz: float, chain: RecordingChain) -> np.ndarray:
     """Sound pressure in µPa from sample values (full scale ±1.0).
 
     Parameters

@@ -17,6 +17,7 @@ __all__ = [
     "spl_peak_to_peak_db",
     "sel_db",
     "band_level_db",
+    "band_spl_db",
     "band_levels_db",
     "fractional_octave_bands",
     "FractionalOctaveBands",
@@ -90,6 +91,36 @@ def band_level_db(
     return power_db(psd @ weights)
 
 
+def band_spl_db(pressure_upa: np.ndarray, sample_rate_hz: float, low_hz: float, high_hz: float) -> np.ndarray:
+    """Band-limited rms sound pressure level of a waveform, dB re 1 µPa.
+
+    The mean square of the part of ``pressure_upa`` between ``low_hz`` and ``high_hz``,
+    from its periodogram (Parseval: a rectangular filter, no window), so that it adds
+    up exactly across adjacent bands.
+
+    Parameters
+    ----------
+    pressure_upa : np.ndarray [shape=(..., n)], µPa
+    sample_rate_hz : float, Hz
+    low_hz, high_hz : float, Hz
+    """
+    fs = check_positive("sample_rate_hz", sample_rate_hz)
+    if not high_hz > low_hz:
+        raise ParameterError(f"band needs high_hz > low_hz, got {low_hz:g} .. {high_hz:g} Hz")
+    p = np.asarray(pressure_upa, dtype=np.float64)
+    n = p.shape[-1]
+    if n < 2:
+        raise ParameterError("a band level needs at least two samples")
+    spectrum = np.fft.rfft(p, axis=-1)
+    f = np.fft.rfftfreq(n, 1.0 / fs)
+    weight = np.where(f == 0.0, 1.0, 2.0)
+    if n % 2 == 0:
+        weight[-1] = 1.0
+    weight = weight * ((f >= low_hz) & (f <= high_hz))
+    mean_square = np.sum(weight * (spectrum.real**2 + spectrum.imag**2), axis=-1) / n**2
+    return power_db(mean_square)
+
+
 def band_levels_db(
     psd_db: np.ndarray,
     frequency_hz: np.ndarray,
@@ -99,9 +130,7 @@ def band_levels_db(
 ) -> np.ndarray:
     """Levels of several bands at once, dB re 1 µPa; bands along a new last axis."""
     f = np.asarray(frequency_hz, dtype=float)
-    weights = np.stack(
-        [_band_weights(f, lo, hi) for lo, hi in zip(lower_hz, upper_hz, strict=True)], axis=1
-    )
+    weights = np.stack([_band_weights(f, lo, hi) for lo, hi in zip(lower_hz, upper_hz, strict=True)], axis=1)
     psd = np.moveaxis(10.0 ** (np.asarray(psd_db, dtype=np.float64) / 10.0), axis, -1)
     return power_db(psd @ weights)
 
@@ -149,9 +178,7 @@ class FractionalOctaveBands:
         return int(self.index.size)
 
 
-def fractional_octave_bands(
-    min_hz: float, max_hz: float, fraction: int = 3
-) -> FractionalOctaveBands:
+def fractional_octave_bands(min_hz: float, max_hz: float, fraction: int = 3) -> FractionalOctaveBands:
     """Bands of the base-10 series whose mid-band frequency lies in [min_hz, max_hz].
 
     Parameters

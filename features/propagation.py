@@ -53,16 +53,12 @@ def _as_range(range_m: np.ndarray | float, reference_m: float) -> np.ndarray:
     return r
 
 
-def spherical_spreading_loss_db(
-    range_m: np.ndarray | float, reference_m: float = 1.0
-) -> np.ndarray:
+def spherical_spreading_loss_db(range_m: np.ndarray | float, reference_m: float = 1.0) -> np.ndarray:
     """Spherical spreading loss ``20 log10(r / r0)``, dB; ``range_m`` and ``reference_m`` in m."""
     return 20.0 * np.log10(_as_range(range_m, reference_m) / reference_m)
 
 
-def cylindrical_spreading_loss_db(
-    range_m: np.ndarray | float, reference_m: float = 1.0
-) -> np.ndarray:
+def cylindrical_spreading_loss_db(range_m: np.ndarray | float, reference_m: float = 1.0) -> np.ndarray:
     """Cylindrical spreading loss ``10 log10(r / r0)``, dB; ``range_m`` and ``reference_m`` in m."""
     return 10.0 * np.log10(_as_range(range_m, reference_m) / reference_m)
 
@@ -92,9 +88,7 @@ def francois_garrison_absorption_db_per_km(
         a3 = 3.964e-4 - 1.146e-5 * t + 1.45e-7 * t**2 - 6.5e-10 * t**3
     p3 = 1.0 - 3.83e-5 * z + 4.9e-10 * z * z
     f_sq = f * f
-    return (
-        a1 * f1 * f_sq / (f1 * f1 + f_sq) + a2 * p2 * f2 * f_sq / (f2 * f2 + f_sq) + a3 * p3 * f_sq
-    )
+    return a1 * f1 * f_sq / (f1 * f1 + f_sq) + a2 * p2 * f2 * f_sq / (f2 * f2 + f_sq) + a3 * p3 * f_sq
 
 
 def ainslie_mccolm_absorption_db_per_km(
@@ -173,21 +167,17 @@ def transmission_loss_db(
         loss = np.where(
             r <= r_t,
             spherical_spreading_loss_db(r),
-            spherical_spreading_loss_db(r_t)
-            + cylindrical_spreading_loss_db(np.maximum(r, r_t), r_t),
+            spherical_spreading_loss_db(r_t) + cylindrical_spreading_loss_db(np.maximum(r, r_t), r_t),
         )
     else:
         raise ParameterError(
-            "spreading must be 'spherical', 'cylindrical' or 'spherical-cylindrical', "
-            f"got {spreading!r}"
+            f"spreading must be 'spherical', 'cylindrical' or 'spherical-cylindrical', got {spreading!r}"
         )
     alpha = absorption_db_per_km(frequency_hz, water, absorption_model)
     return loss + alpha * r / 1000.0
 
 
-def received_level_db(
-    source_level_db: np.ndarray | float, loss_db: np.ndarray | float
-) -> np.ndarray:
+def received_level_db(source_level_db: np.ndarray | float, loss_db: np.ndarray | float) -> np.ndarray:
     """Received level RL = SL - TL; SL in dB re 1 µPa·m, TL in dB -> dB re 1 µPa."""
     return np.asarray(source_level_db, dtype=float) - np.asarray(loss_db, dtype=float)
 
@@ -197,9 +187,7 @@ def source_level_db(received_db: np.ndarray | float, loss_db: np.ndarray | float
     return np.asarray(received_db, dtype=float) + np.asarray(loss_db, dtype=float)
 
 
-def voltage_rms(
-    level_db: np.ndarray | float, system_sensitivity_db: np.ndarray | float
-) -> np.ndarray:
+def voltage_rms(level_db: np.ndarray | float, system_sensitivity_db: np.ndarray | float) -> np.ndarray:
     """Voltage ``10**((L + S) / 20)`` V, L in dB re 1 µPa and sensitivity S in dB re 1 V/µPa.
 
     An rms level gives V rms; a zero-to-peak level gives V 0-to-peak (REFERENCES §4).

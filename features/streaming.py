@@ -73,9 +73,7 @@ class AudioBlock:
     @property
     def core(self) -> np.ndarray:
         """The core samples, without context."""
-        return self.samples[
-            self.core_start - self.first_sample : self.core_stop - self.first_sample
-        ]
+        return self.samples[self.core_start - self.first_sample : self.core_stop - self.first_sample]
 
 
 def audio_info(path: str | Path) -> AudioInfo:
@@ -94,9 +92,7 @@ def audio_info(path: str | Path) -> AudioInfo:
             raise AudioReadError(
                 path, f"truncated: header says {declared} samples, data ends at {info.frames}"
             )
-    return AudioInfo(
-        int(info.samplerate), int(info.frames), int(info.channels), info.format, info.subtype
-    )
+    return AudioInfo(int(info.samplerate), int(info.frames), int(info.channels), info.format, info.subtype)
 
 
 def read_blocks(
@@ -134,9 +130,7 @@ def read_blocks(
         raise AudioReadError(path, f"cannot open as sound ({_reason(exc)})") from None
     with handle:
         if not 0 <= channel < handle.channels:
-            raise AudioReadError(
-                path, f"has {handle.channels} channel(s); channel {channel} does not exist"
-            )
+            raise AudioReadError(path, f"has {handle.channels} channel(s); channel {channel} does not exist")
         total = handle.frames
         stop = total if stop_frame is None else min(int(stop_frame), total)
         start = max(int(start_frame), 0)
@@ -146,9 +140,7 @@ def read_blocks(
         try:
             handle.seek(buf_start)
         except (RuntimeError, sf.LibsndfileError) as exc:
-            raise AudioReadError(
-                path, f"cannot seek to sample {buf_start} ({_reason(exc)})"
-            ) from None
+            raise AudioReadError(path, f"cannot seek to sample {buf_start} ({_reason(exc)})") from None
         for core_start in range(start, stop, block_frames):
             core_stop = min(core_start + block_frames, stop)
             want_start = max(core_start - context_frames, 0)

@@ -119,9 +119,7 @@ def _refused(capsys, argv):
         (FLAT_CALIBRATION + "hydrophone_sensitivty = 3\n", "hydrophone_sensitivty"),
     ],
 )
-def test_bad_manifest_gives_exit_2_and_one_line_naming_the_field(
-    duty_cycled, capsys, calibration, field
-):
+def test_bad_manifest_gives_exit_2_and_one_line_naming_the_field(duty_cycled, capsys, calibration, field):
     manifest, _ = duty_cycled
     write_manifest(manifest.parent, calibration=calibration)
     code, err = _refused(capsys, ["calibrate", str(manifest)])

@@ -63,9 +63,7 @@ def test_octave_bands_and_three_thirds_tile_an_octave():
         lo = thirds.lower_hz[thirds.index == 3 * x - 1]
         hi = thirds.upper_hz[thirds.index == 3 * x + 1]
         if lo.size and hi.size:
-            assert lo[0] == pytest.approx(lower, abs=1e-4) and hi[0] == pytest.approx(
-                upper, abs=1e-4
-            )
+            assert lo[0] == pytest.approx(lower, abs=1e-4) and hi[0] == pytest.approx(upper, abs=1e-4)
 
 
 def test_sel_of_steady_signal():
@@ -101,3 +99,16 @@ def test_adjacent_band_levels_add_up_to_their_union():
     both = band_level_db(psd, f, 100.0, 502.0)
     assert 10 * np.log10(10 ** (a / 10) + 10 ** (b / 10)) == pytest.approx(both, abs=1e-9)
     assert both - a == pytest.approx(3.0103, abs=1e-3)
+
+
+def test_band_spl_of_waveform_selects_the_band():
+    # Two tones of 1 Pa rms (120 dB re 1 µPa each, ISO 18405): the band around one gives
+    # 120 dB, the whole band gives their incoherent sum 123.01 dB (REFERENCES §3).
+    from callsieve.features.levels import band_spl_db
+
+    fs = 2000
+    t = np.arange(fs * 4) / fs
+    p = 1e6 * np.sqrt(2) * (np.sin(2 * np.pi * 100 * t) + np.sin(2 * np.pi * 400 * t))
+    assert band_spl_db(p, fs, 50.0, 200.0) == pytest.approx(120.0, abs=1e-6)
+    assert band_spl_db(p, fs, 1.0, 999.0) == pytest.approx(123.0103, abs=1e-3)
+    assert band_spl_db(p, fs, 0.0, 1000.0) == pytest.approx(spl_rms_db(p), abs=1e-9)

@@ -39,12 +39,8 @@ def test_absorption_against_both_published_formulas(conditions):
     t, z = conditions
     water = Seawater(temperature_c=t, salinity_psu=35.0, ph=8.0, depth_m=z)
     fg_ref, am_ref = TABLE[conditions]
-    np.testing.assert_allclose(
-        francois_garrison_absorption_db_per_km(FREQS_HZ, water), fg_ref, rtol=1e-3
-    )
-    np.testing.assert_allclose(
-        ainslie_mccolm_absorption_db_per_km(FREQS_HZ, water), am_ref, rtol=1e-3
-    )
+    np.testing.assert_allclose(francois_garrison_absorption_db_per_km(FREQS_HZ, water), fg_ref, rtol=1e-3)
+    np.testing.assert_allclose(ainslie_mccolm_absorption_db_per_km(FREQS_HZ, water), am_ref, rtol=1e-3)
 
 
 def test_francois_garrison_tabulated_check_values():
@@ -61,9 +57,7 @@ def test_francois_garrison_tabulated_check_values():
         (10, 35, 100, 33.6),
     ]:
         water = Seawater(temperature_c=t, salinity_psu=s)
-        assert francois_garrison_absorption_db_per_km(1000.0 * f_khz, water) == pytest.approx(
-            ref, rel=5e-3
-        )
+        assert francois_garrison_absorption_db_per_km(1000.0 * f_khz, water) == pytest.approx(ref, rel=5e-3)
 
 
 def test_absorption_rules_of_thumb():

@@ -32,9 +32,7 @@ def test_same_pressure_at_two_sample_rates_gives_same_psd_on_same_grid():
     # generated at 8 kHz and decimated exactly to 2 kHz, must give the same levels.
     rng = np.random.default_rng(2)
     fs_hi, fs_lo = 8000, 2000
-    noise = signal.sosfiltfilt(
-        signal.butter(8, 900, fs=fs_hi, output="sos"), rng.normal(0, 1e4, fs_hi * 120)
-    )
+    noise = signal.sosfiltfilt(signal.butter(8, 900, fs=fs_hi, output="sos"), rng.normal(0, 1e4, fs_hi * 120))
     t = np.arange(noise.size) / fs_hi
     x_hi = noise + 3e4 * np.sin(2 * np.pi * 300.0 * t)
     x_lo = signal.resample_poly(x_hi, 1, 4)
@@ -60,9 +58,7 @@ def test_calibration_is_applied_per_bin():
     grid = SpectrogramGrid(2.0, 0.5, 20.0, 900.0)
     counts = psd_spectrogram(x, fs, grid)
     upa = psd_spectrogram(x, fs, grid, chain=chain)
-    np.testing.assert_allclose(
-        upa.psd_db - counts.psd_db, 20 * np.log10(chain.upa_per_unit(1.0)), atol=1e-3
-    )
+    np.testing.assert_allclose(upa.psd_db - counts.psd_db, 20 * np.log10(chain.upa_per_unit(1.0)), atol=1e-3)
 
 
 def test_non_integer_window_is_interpolated_onto_the_grid():
@@ -115,12 +111,6 @@ def test_streamed_frames_equal_whole_file_frames(tmp_path):
         for b in read_blocks(path, block_frames, context_frames=n_win):
             idx = grid.frames_starting_in(b.core_start, b.core_stop, fs)
             idx = idx[grid.frame_start_samples(idx, fs) + n_win <= b.first_sample + b.samples.size]
-            parts.append(
-                psd_spectrogram(b.samples, fs, grid, first_sample=b.first_sample, frame_index=idx)
-            )
-        np.testing.assert_array_equal(
-            np.concatenate([p.frame_index for p in parts]), whole.frame_index
-        )
-        np.testing.assert_allclose(
-            np.concatenate([p.psd_db for p in parts], axis=1), whole.psd_db, atol=1e-4
-        )
+            parts.append(psd_spectrogram(b.samples, fs, grid, first_sample=b.first_sample, frame_index=idx))
+        np.testing.assert_array_equal(np.concatenate([p.frame_index for p in parts]), whole.frame_index)
+        np.testing.assert_allclose(np.concatenate([p.psd_db for p in parts], axis=1), whole.psd_db, atol=1e-4)

@@ -19,9 +19,7 @@ def test_block_cores_tile_the_file_sample_exactly(tmp_path, ext, subtype):
     np.testing.assert_array_equal(np.concatenate([b.core for b in blocks]), whole)
     for b in blocks:
         # Context is the true neighbourhood, clipped at the file's ends.
-        np.testing.assert_array_equal(
-            b.samples, whole[b.first_sample : b.first_sample + b.samples.size]
-        )
+        np.testing.assert_array_equal(b.samples, whole[b.first_sample : b.first_sample + b.samples.size])
         assert b.first_sample == max(b.core_start - 137, 0)
         assert b.first_sample + b.samples.size == min(b.core_stop + 137, whole.size)
 
@@ -31,9 +29,7 @@ def test_int16_convention_of_soundfile(tmp_path):
     path = tmp_path / "codes.wav"
     sf.write(path, np.array([32767, -32768, 0], dtype=np.int16), 2000, subtype="PCM_16")
     (block,) = list(read_blocks(path, 10))
-    np.testing.assert_array_equal(
-        block.samples, np.array([0.999969482421875, -1.0, 0.0], dtype=np.float32)
-    )
+    np.testing.assert_array_equal(block.samples, np.array([0.999969482421875, -1.0, 0.0], dtype=np.float32))
 
 
 def test_truncated_wav_and_flac_are_reported(tmp_path):

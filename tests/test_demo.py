@@ -1,0 +1,27 @@
+"""`callsieve demo`: writes the scenario and runs the job's steps on it."""
+
+from __future__ import annotations
+
+import json
+
+from callsieve.classifier.cli import main
+
+
+def test_demo_writes_scenario_and_reports(tmp_path, capsys):
+    out = tmp_path / "demo"
+    assert main(["demo", str(out), "--hours", "1", "--seed", "5", "--quiet"]) == 0
+    page = capsys.readouterr().out
+    assert "invented scenario" in page and "candidates for trained analysts" in page
+    scenario = json.loads((out / "scenario.json").read_text())
+    assert scenario["seed"] == 5 and scenario["files"]["south-slope"] == 2
+    for site in ("north-shelf", "south-slope"):
+        assert (out / site / "manifest.toml").exists()
+    assert (out / "north-shelf" / "labels.csv").exists() and (out / "south-slope" / "truth.csv").exists()
+    assert "Calibration" in page
+
+
+def test_demo_refuses_a_foreign_folder(tmp_path, capsys):
+    (tmp_path / "mine.txt").write_text("an analyst's notes")
+    assert main(["demo", str(tmp_path), "--no-run"]) == 2
+    assert "not an earlier demo" in capsys.readouterr().err
+    assert (tmp_path / "mine.txt").read_text() == "an analyst's notes"
