@@ -60,6 +60,54 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _progress(args: argparse.Namespace):
+    if args.quiet:
+        return None
+    return lambda line: print(f"callsieve: {line}", file=sys.stderr, flush=True)
+
+
+def _cmd_train(args: argparse.Namespace) -> int:
+    from .training import train
+
+    report = train(
+        args.deployment,
+        args.labels,
+        args.out,
+        config_path=args.config,
+        target=args.target,
+        tracking_uri=args.tracking_uri,
+        experiment=args.experiment,
+        register=args.register,
+        progress=_progress(args),
+    )
+    print(format_training_report(report))
+    return EXIT_OK
+
+
+def format_training_report(report: dict) -> str:
+    """A page about a trained model for the terminal."""
+    s = report["settings"]
+    lines = [
+        f"model            {report['model']} (sha256 {report['content_sha256'][:12]})",
+        f"band             {s['low_hz']:g}-{s['high_hz']:g} Hz, resolution {s['resolution_hz']:g} Hz, "
+        f"window {s['window_s']:g} s every {s['window_hop_s']:g} s",
+        "examples         " + ", ".join(f"{k} {v}" for k, v in sorted(report["examples"].items())),
+        f"grouped CV       {report['cv_folds']} folds; per class: average precision, precision and "
+        "recall at 0.5",
+    ]
+    for c, m in sorted(report["cv"].items()):
+        lines.append(
+            f"  {c:<16} AP {m['average_precision']:.3f}   P {m['precision_at_0.5']:.3f}   "
+            f"R {m['recall_at_0.5']:.3f}   ({m['examples']} windows)"
+        )
+    if "run" in report:
+        r = report["run"]
+        lines.append(f"experiment run   {r['run_id']} in {r['tracking_uri']}")
+        if "model_version" in r:
+            lines.append(f"registered       version {r['model_version']}")
+    return "\n".join(lines)
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every verb."""
     common = argparse.ArgumentParser(add_help=False)
@@ -97,6 +145,29 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--no-run", action="store_true", help="write the scenario only")
     p.set_defaults(func=_cmd_demo)
+
+    p = verbs.add_parser(
+        "train",
+        parents=[common],
+        help="train a classifier from labelled deployments and record the experiment",
+    )
+    p.add_argument(
+        "--deployment",
+        action="append",
+        required=True,
+        metavar="MANIFEST",
+        help="deployment manifest (repeat for several)",
+    )
+    p.add_argument(
+        "--labels", action="append", required=True, metavar="CSV", help="label table (repeat for several)"
+    )
+    p.add_argument("--out", required=True, metavar="MODEL", help="model file to write")
+    p.add_argument("--config", metavar="TOML", help="training configuration (see configs/)")
+    p.add_argument("--target", metavar="LABEL", help="learn this label against everything else")
+    p.add_argument("--tracking-uri", metavar="URI", help="MLflow store (default: MLflow's own)")
+    p.add_argument("--experiment", metavar="NAME", help="MLflow experiment (default 'callsieve')")
+    p.add_argument("--register", metavar="NAME", help="register the model under this name")
+    p.set_defaults(func=_cmd_train)
     return parser
 
 

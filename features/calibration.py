@@ -22,6 +22,7 @@ __all__ = [
     "RecordingChain",
     "pressure_from_samples",
     "samples_from_pressure",
+    "band_pressure_fir",
 ]
 
 
@@ -187,3 +188,40 @@ def samples_from_pressure(
         return p / chain.upa_per_unit(1.0)
     fir = _correction_fir(chain, sample_rate_hz, inverse=True)
     return signal.oaconvolve(p, fir, mode="same")
+
+
+def band_pressure_fir(
+    chain: RecordingChain, sample_rate_hz: float, low_hz: float, high_hz: float
+) -> np.ndarray:
+    """Linear-phase FIR from sample values to band-limited pressure in µPa.
+
+    The gain is the chain's µPa per unit inside [low_hz, high_hz] and falls to zero
+    over transitions of a quarter of ``low_hz`` (at least 5 Hz, at most 500 Hz) on
+    each side, so the same band gives the same filter in Hz at any sample rate.
+
+    Returns
+    -------
+    taps : np.ndarray [shape=(n_taps,)], odd length, zero delay at its centre
+    """
+    fs = check_positive("sample_rate_hz", sample_rate_hz)
+    nyquist = fs / 2.0
+    transition = float(np.clip(0.25 * low_hz, 5.0, 500.0))
+    taps = int(np.clip(np.ceil(4.0 * fs / transition), 65, 16385)) | 1
+    grid = [0.0]
+    gain = [0.0]
+    lo_stop = max(low_hz - transition, 0.0)
+    if lo_stop > 0:
+        grid += [lo_stop]
+        gain += [0.0]
+    hi_stop = min(high_hz + transition, nyquist)
+    inner = np.linspace(max(low_hz, 1e-6), min(high_hz, nyquist), 64)
+    grid += list(inner)
+    gain += list(chain.upa_per_unit(inner))
+    if hi_stop < nyquist:
+        grid += [hi_stop, nyquist]
+        gain += [0.0, 0.0]
+    else:
+        grid[-1] = nyquist
+    grid_arr = np.array(grid)
+    keep = np.concatenate([[True], np.diff(grid_arr) > 0])
+    return signal.firwin2(taps, grid_arr[keep], np.array(gain)[keep], fs=fs, window="hann")

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import soundfile as sf
 
-__all__ = ["AudioReadError", "AudioInfo", "AudioBlock", "audio_info", "read_blocks"]
+__all__ = ["AudioReadError", "AudioInfo", "AudioBlock", "AudioReader", "audio_info", "read_blocks"]
 
 
 class AudioReadError(Exception):
@@ -170,6 +170,64 @@ def read_blocks(
                 core_stop,
                 int(handle.samplerate),
             )
+
+
+class AudioReader:
+    """Random access to spans of one channel of a sound file, as float32 sample values.
+
+    Use as a context manager. Spans are read sequentially where they follow each other,
+    so reading a file front to back decodes each sample about once.
+
+    Parameters
+    ----------
+    path : str or Path
+    channel : int, 0-based
+    """
+
+    def __init__(self, path: str | Path, channel: int = 0) -> None:
+        self.path = str(path)
+        self.channel = channel
+        try:
+            self._handle = sf.SoundFile(self.path)
+        except (RuntimeError, sf.LibsndfileError, OSError) as exc:
+            raise AudioReadError(path, f"cannot open as sound ({_reason(exc)})") from None
+        if not 0 <= channel < self._handle.channels:
+            self._handle.close()
+            raise AudioReadError(
+                path, f"has {self._handle.channels} channel(s); channel {channel} does not exist"
+            )
+        self.frames = int(self._handle.frames)
+        self.sample_rate_hz = int(self._handle.samplerate)
+        self._position = 0
+
+    def __enter__(self) -> AudioReader:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Release the file."""
+        self._handle.close()
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        """Samples [start, stop) of the channel (clipped to the file), float32, full scale ±1."""
+        start, stop = max(int(start), 0), min(int(stop), self.frames)
+        if stop <= start:
+            return np.empty(0, dtype=np.float32)
+        try:
+            if start != self._position:
+                self._handle.seek(start)
+            data = self._handle.read(stop - start, dtype="float32", always_2d=True)
+        except (RuntimeError, sf.LibsndfileError) as exc:
+            raise AudioReadError(self.path, f"read failed near sample {start} ({_reason(exc)})") from None
+        got = data.shape[0]
+        self._position = start + got
+        if got < stop - start:
+            raise AudioReadError(
+                self.path, f"truncated: header says {self.frames} samples, data ends at {start + got}"
+            )
+        return np.ascontiguousarray(data[:, self.channel])
 
 
 def _wav_declared_frames(path: Path) -> int | None:

@@ -1,0 +1,193 @@
+"""Training configuration (TOML): model kind and parameters, examples, validation.
+
+Parameters are declared once in a table of constraints and checked in one place. The
+files in ``configs/`` hold the documented defaults of each model kind.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+from callsieve.features._validation import ParameterError
+from callsieve.features.descriptors import DescriptorSettings
+
+from .errors import InputError
+
+__all__ = ["TrainingConfig", "load_training_config", "MODEL_KINDS", "DEFAULT_PARAMS"]
+
+MODEL_KINDS = ("gradient-boosting", "random-forest")
+DEFAULT_PARAMS: dict[str, dict[str, Any]] = {
+    "gradient-boosting": {
+        "learning_rate": 0.1,
+        "max_iter": 200,
+        "max_leaf_nodes": 31,
+        "min_samples_leaf": 20,
+        "l2_regularization": 0.0,
+    },
+    "random-forest": {
+        "n_estimators": 300,
+        "min_samples_leaf": 2,
+        "max_features": "sqrt",
+    },
+}
+# Estimator parameters a user may set, per kind (scikit-learn's names).
+_ALLOWED_PARAMS = {
+    "gradient-boosting": {
+        "learning_rate",
+        "max_iter",
+        "max_leaf_nodes",
+        "max_depth",
+        "min_samples_leaf",
+        "l2_regularization",
+        "max_features",
+        "max_bins",
+    },
+    "random-forest": {
+        "n_estimators",
+        "max_depth",
+        "min_samples_split",
+        "min_samples_leaf",
+        "max_features",
+        "max_samples",
+        "bootstrap",
+    },
+}
+
+
+@dataclass(frozen=True)
+class TrainingConfig:
+    """Everything ``train`` needs besides the data.
+
+    Parameters
+    ----------
+    kind : {'gradient-boosting', 'random-forest'}
+    params : dict, estimator parameters (scikit-learn names); defaults per kind
+    calibration : {'isotonic', 'sigmoid'}, how probabilities are calibrated
+    class_weight : {'balanced', 'none'}, weighting of classes against imbalance
+    background_ratio : float, background examples per labelled example
+    hard_fraction : float, 0..1, share of the background budget given to the loudest
+        in-band background windows (the rest is drawn at random)
+    min_overlap : float, 0..1, share of a call (or of the window, for calls longer than
+        it) a window must hold to be an example of that call
+    group_by : {'hour', 'file', 'deployment'}, what may not feed both sides of a fold
+    folds : int, grouped cross-validation folds, for metrics and calibration alike
+        (fewer when there are fewer groups)
+    seed : int
+    descriptors : dict, descriptor settings; any left out are chosen from the labels
+    """
+
+    kind: str = "gradient-boosting"
+    params: dict[str, Any] = field(default_factory=dict)
+    calibration: str = "isotonic"
+    class_weight: str = "balanced"
+    background_ratio: float = 4.0
+    hard_fraction: float = 0.5
+    min_overlap: float = 0.5
+    group_by: str = "hour"
+    folds: int = 4
+    seed: int = 0
+    descriptors: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        for name, check, expected in _CONSTRAINTS:
+            if not check(getattr(self, name)):
+                raise ParameterError(f"{name} must be {expected}, got {getattr(self, name)!r}")
+        unknown = set(self.params) - _ALLOWED_PARAMS[self.kind]
+        if unknown:
+            raise ParameterError(
+                f"params {', '.join(sorted(unknown))} are not parameters of {self.kind}; "
+                f"allowed: {', '.join(sorted(_ALLOWED_PARAMS[self.kind]))}"
+            )
+        known = {f.name for f in fields(DescriptorSettings)}
+        bad = set(self.descriptors) - known
+        if bad:
+            raise ParameterError(
+                f"descriptors {', '.join(sorted(bad))} unknown; known: {', '.join(sorted(known))}"
+            )
+
+    @property
+    def estimator_params(self) -> dict[str, Any]:
+        """The kind's defaults updated by the user's ``params``."""
+        return DEFAULT_PARAMS[self.kind] | dict(self.params)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain values for records."""
+        return {f.name: getattr(self, f.name) for f in fields(self)} | {"params": self.estimator_params}
+
+
+_CONSTRAINTS = [
+    ("kind", lambda v: v in MODEL_KINDS, f"one of {', '.join(MODEL_KINDS)}"),
+    ("calibration", lambda v: v in ("isotonic", "sigmoid"), "'isotonic' or 'sigmoid'"),
+    ("class_weight", lambda v: v in ("balanced", "none"), "'balanced' or 'none'"),
+    ("background_ratio", lambda v: isinstance(v, int | float) and v > 0, "a number > 0"),
+    ("hard_fraction", lambda v: isinstance(v, int | float) and 0 <= v <= 1, "a number in 0..1"),
+    ("min_overlap", lambda v: isinstance(v, int | float) and 0 < v <= 1, "a number in (0, 1]"),
+    ("group_by", lambda v: v in ("hour", "file", "deployment"), "'hour', 'file' or 'deployment'"),
+    ("folds", lambda v: isinstance(v, int) and v >= 2, "an integer >= 2"),
+    ("seed", lambda v: isinstance(v, int), "an integer"),
+]
+
+_TABLES = {
+    "model": {
+        "kind": "kind",
+        "calibration": "calibration",
+        "class_weight": "class_weight",
+        "params": "params",
+    },
+    "examples": {
+        "background_ratio": "background_ratio",
+        "hard_fraction": "hard_fraction",
+        "min_overlap": "min_overlap",
+    },
+    "validation": {
+        "group_by": "group_by",
+        "folds": "folds",
+        "calibration_folds": "calibration_folds",
+        "seed": "seed",
+    },
+    "descriptors": None,
+}
+
+
+def load_training_config(path: str | Path | None) -> TrainingConfig:
+    """Read a training configuration; None gives the defaults.
+
+    Raises
+    ------
+    InputError
+        Naming the file, the table and field, and what is wrong.
+    """
+    if path is None:
+        return TrainingConfig()
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            doc = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such config file") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{path}: not valid TOML ({exc})") from None
+    values: dict[str, Any] = {}
+    for table, content in doc.items():
+        if table not in _TABLES:
+            raise InputError(
+                f"{path}: [{table}]: unknown table; expected {', '.join('[' + t + ']' for t in _TABLES)}"
+            )
+        if not isinstance(content, dict):
+            raise InputError(f"{path}: {table} must be a table")
+        if _TABLES[table] is None:
+            values["descriptors"] = dict(content)
+            continue
+        for key, value in content.items():
+            if key not in _TABLES[table]:
+                raise InputError(
+                    f"{path}: [{table}] {key}: unknown field; known: {', '.join(_TABLES[table])}"
+                )
+            values[_TABLES[table][key]] = value
+    try:
+        return TrainingConfig(**values)
+    except ParameterError as exc:
+        raise InputError(f"{path}: {exc}") from None

@@ -1,0 +1,148 @@
+"""Label tables (SPEC §2): analysts' annotations, read and checked row by row."""
+
+from __future__ import annotations
+
+import csv
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+from .deployment import Deployment
+from .errors import InputError
+
+__all__ = ["Annotation", "read_label_table", "REQUIRED_COLUMNS", "BACKGROUND"]
+
+REQUIRED_COLUMNS = ("file", "start_s", "end_s", "label")
+# The class of windows that hold no labelled call.
+BACKGROUND = "background"
+# A label may end this far past its file's end (rounding by annotation tools), in s.
+_END_TOLERANCE_S = 0.5
+
+
+@dataclass(frozen=True)
+class Annotation:
+    """One labelled call: where it is (file, seconds from the file's start) and what."""
+
+    deployment: str
+    file: str
+    start_s: float
+    end_s: float
+    label: str
+    low_hz: float | None
+    high_hz: float | None
+    row: int
+
+    @property
+    def duration_s(self) -> float:
+        """Duration, s."""
+        return self.end_s - self.start_s
+
+
+def _float(row: dict, key: str, where: str) -> float:
+    text = (row.get(key) or "").strip()
+    try:
+        value = float(text)
+    except ValueError:
+        raise InputError(f"{where}: {key} must be a number, got {text!r}") from None
+    if not math.isfinite(value):
+        raise InputError(f"{where}: {key} must be finite, got {text!r}")
+    return value
+
+
+def read_label_table(path: str | Path, deployments: list[Deployment]) -> list[Annotation]:
+    """Read and check a label table against the deployments it describes.
+
+    Parameters
+    ----------
+    path : str or Path, CSV with columns file, start_s, end_s, label [, low_hz, high_hz,
+        deployment]; other columns are kept out of the way
+    deployments : list of Deployment
+        With more than one, the table needs a ``deployment`` column naming each row's.
+
+    Returns
+    -------
+    list of Annotation
+
+    Raises
+    ------
+    InputError
+        For a missing column, and for the first bad row with its row number (the header
+        is row 1) and the reason.
+    """
+    path = Path(path)
+    by_name = {d.name: d for d in deployments}
+    try:
+        fh = open(path, newline="", encoding="utf-8-sig")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read the label table: {exc.strerror}") from None
+    with fh:
+        reader = csv.DictReader(fh)
+        columns = reader.fieldnames or []
+        missing = [c for c in REQUIRED_COLUMNS if c not in columns]
+        if missing:
+            raise InputError(
+                f"{path}: missing column(s) {', '.join(missing)}; the first line must name "
+                f"at least {','.join(REQUIRED_COLUMNS)}"
+            )
+        if len(by_name) > 1 and "deployment" not in columns:
+            raise InputError(
+                f"{path}: covers {len(by_name)} deployments, so it needs a 'deployment' column "
+                "with each row's manifest name"
+            )
+        files = {
+            name: {f.name: f for f in d.files} | {x.name: None for x in d.faults}
+            for name, d in by_name.items()
+        }
+        out: list[Annotation] = []
+        for row_no, row in enumerate(reader, start=2):
+            where = f"{path}: row {row_no}"
+            if None in row:
+                raise InputError(
+                    f"{where}: more fields than columns (a comma inside a value? labels are "
+                    "free text without commas)"
+                )
+            if "deployment" in columns and (row.get("deployment") or "").strip():
+                dep_name = row["deployment"].strip()
+                if dep_name not in by_name:
+                    raise InputError(
+                        f"{where}: deployment {dep_name!r} is not one of the manifests given "
+                        f"({', '.join(sorted(by_name))})"
+                    )
+            elif len(by_name) == 1:
+                dep_name = next(iter(by_name))
+            else:
+                raise InputError(f"{where}: deployment is empty")
+            name = (row.get("file") or "").strip()
+            if name not in files[dep_name]:
+                raise InputError(
+                    f"{where}: file {name!r} is not in deployment {dep_name!r} "
+                    f"({by_name[dep_name].audio_dir}); check the name and the manifest's glob"
+                )
+            label = (row.get("label") or "").strip()
+            if not label:
+                raise InputError(f"{where}: label is empty")
+            start, end = _float(row, "start_s", where), _float(row, "end_s", where)
+            if start < 0:
+                raise InputError(f"{where}: start_s {start:g} is before the file's start")
+            if not end > start:
+                raise InputError(f"{where}: end_s {end:g} is not after start_s {start:g}")
+            rec = files[dep_name][name]
+            if rec is None:
+                raise InputError(
+                    f"{where}: file {name!r} cannot be read "
+                    f"({next(x.error for x in by_name[dep_name].faults if x.name == name)})"
+                )
+            if end > rec.duration_s + _END_TOLERANCE_S:
+                raise InputError(f"{where}: end_s {end:g} is past the end of {name} ({rec.duration_s:g} s)")
+            low = _float(row, "low_hz", where) if (row.get("low_hz") or "").strip() else None
+            high = _float(row, "high_hz", where) if (row.get("high_hz") or "").strip() else None
+            if low is not None and high is not None and not high > low:
+                raise InputError(f"{where}: high_hz {high:g} is not above low_hz {low:g}")
+            if label == BACKGROUND:
+                raise InputError(
+                    f"{where}: '{BACKGROUND}' is reserved for unlabelled time; leave such time unannotated"
+                )
+            out.append(Annotation(dep_name, name, start, min(end, rec.duration_s), label, low, high, row_no))
+    if not out:
+        raise InputError(f"{path}: holds no label rows")
+    return out

@@ -1,0 +1,371 @@
+"""The call classifier (a scikit-learn estimator) and the model file that carries it.
+
+The model file is a skops archive: loading it can only build objects of the types in
+:data:`TRUSTED_TYPES`, so it cannot run code a file brings with it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import skops.io as sio
+from callsieve.features.descriptors import DESCRIPTOR_VERSION, DescriptorSettings
+from sklearn.base import BaseEstimator, ClassifierMixin, clone
+from sklearn.ensemble import HistGradientBoostingClassifier, RandomForestClassifier
+from sklearn.isotonic import IsotonicRegression
+from sklearn.linear_model import LogisticRegression
+from sklearn.model_selection import StratifiedGroupKFold, StratifiedKFold
+from sklearn.utils.validation import check_is_fitted
+
+from .errors import InputError
+
+__all__ = ["CallClassifier", "CallModel", "save_model", "load_model", "TRUSTED_TYPES", "MODEL_FORMAT"]
+
+MODEL_FORMAT = "callsieve-model/1"
+
+
+class CallClassifier(ClassifierMixin, BaseEstimator):
+    """Gradient-boosted or random-forest classifier with calibrated probabilities.
+
+    Fitting runs a grouped cross-validation once: its out-of-fold scores fit one
+    calibrator per class (isotonic or sigmoid), and also give honest out-of-fold
+    probabilities (each fold calibrated by the other folds' calibrators) for metrics.
+    The final estimator is then fitted on all rows. ``folds + 1`` fits in all.
+
+    Parameters
+    ----------
+    kind : {'gradient-boosting', 'random-forest'}
+    params : dict, parameters of the scikit-learn estimator of that kind
+    calibration : {'isotonic', 'sigmoid'}
+    class_weight : {'balanced', 'none'}
+    folds : int, grouped folds for calibration and out-of-fold scores
+    random_state : int
+
+    Attributes
+    ----------
+    classes_ : np.ndarray, class labels
+    estimator_ : the fitted scikit-learn estimator (all rows)
+    calibrators_ : list, one fitted calibrator per class (one in total for two classes)
+    fold_ : np.ndarray [shape=(n,)], the fold each training row was held out in
+    oof_proba_ : np.ndarray [shape=(n, n_classes)], out-of-fold calibrated probabilities
+    n_features_in_ : int
+    """
+
+    def __init__(
+        self,
+        kind: str = "gradient-boosting",
+        params: dict | None = None,
+        calibration: str = "isotonic",
+        class_weight: str = "balanced",
+        folds: int = 4,
+        random_state: int = 0,
+    ) -> None:
+        self.kind = kind
+        self.params = params
+        self.calibration = calibration
+        self.class_weight = class_weight
+        self.folds = folds
+        self.random_state = random_state
+
+    def _base(self) -> BaseEstimator:
+        params = dict(self.params or {})
+        balanced = self.class_weight == "balanced"
+        if self.kind == "gradient-boosting":
+            return HistGradientBoostingClassifier(
+                **params,
+                class_weight="balanced" if balanced else None,
+                early_stopping=False,
+                random_state=self.random_state,
+            )
+        if self.kind == "random-forest":
+            return RandomForestClassifier(
+                **params,
+                class_weight="balanced_subsample" if balanced else None,
+                n_jobs=1,
+                random_state=self.random_state,
+            )
+        raise ValueError(f"unknown model kind {self.kind!r}")
+
+    def _splits(self, X: np.ndarray, y: np.ndarray, groups: np.ndarray | None) -> list:
+        if groups is not None and len(np.unique(groups)) >= 2:
+            n = int(min(self.folds, len(np.unique(groups))))
+            splitter = StratifiedGroupKFold(n_splits=n, shuffle=True, random_state=self.random_state)
+            return list(splitter.split(X, y, groups))
+        n = int(min(self.folds, np.min(np.unique(y, return_counts=True)[1])))
+        return list(
+            StratifiedKFold(n_splits=max(n, 2), shuffle=True, random_state=self.random_state).split(X, y)
+        )
+
+    def _fit_calibrators(self, raw: np.ndarray, y: np.ndarray, weight: np.ndarray) -> list:
+        columns = [1] if len(self.classes_) == 2 else range(len(self.classes_))
+        out = []
+        for j in columns:
+            target = (y == self.classes_[j]).astype(float)
+            if self.calibration == "isotonic":
+                cal = IsotonicRegression(y_min=0.0, y_max=1.0, out_of_bounds="clip")
+                cal.fit(raw[:, j], target, sample_weight=weight)
+            else:  # Platt scaling on the log-odds of the score
+                cal = LogisticRegression(C=1e6)
+                cal.fit(_logit(raw[:, j])[:, None], target.astype(int), sample_weight=weight)
+            out.append(cal)
+        return out
+
+    def _calibrate(self, raw: np.ndarray, calibrators: list) -> np.ndarray:
+        def one(cal, column):
+            if isinstance(cal, IsotonicRegression):
+                return cal.predict(column)
+            return cal.predict_proba(_logit(column)[:, None])[:, 1]
+
+        if len(self.classes_) == 2:
+            p = np.clip(one(calibrators[0], raw[:, 1]), 0.0, 1.0)
+            return np.column_stack([1.0 - p, p])
+        proba = np.column_stack([one(c, raw[:, j]) for j, c in enumerate(calibrators)])
+        total = proba.sum(axis=1, keepdims=True)
+        # Rows every calibrator put at zero fall back to the uncalibrated scores.
+        return np.where(total > 0, proba / np.where(total > 0, total, 1.0), raw)
+
+    def fit(
+        self,
+        X: np.ndarray,
+        y: np.ndarray,
+        sample_weight: np.ndarray | None = None,
+        groups: np.ndarray | None = None,
+    ) -> CallClassifier:
+        """Fit the estimator and its probability calibration.
+
+        Parameters
+        ----------
+        X : np.ndarray [shape=(n, n_descriptors)], descriptors in physical units
+        y : np.ndarray [shape=(n,)], class labels
+        sample_weight : np.ndarray [shape=(n,)], optional; inverse sampling probabilities
+            make the calibrated probabilities those of the population of windows
+        groups : np.ndarray [shape=(n,)], optional; no group is split across folds
+        """
+        X = np.asarray(X, dtype=np.float32)
+        y = np.asarray(y)
+        weight = np.ones(y.size) if sample_weight is None else np.asarray(sample_weight, dtype=float)
+        self.classes_ = np.unique(y)
+        if self.classes_.size < 2:
+            raise ValueError("need at least two classes")
+        splits = self._splits(X, y, groups)
+        raw = np.zeros((y.size, self.classes_.size))
+        self.fold_ = np.zeros(y.size, dtype=int)
+        for k, (train, test) in enumerate(splits):
+            model = clone(self._base()).fit(X[train], y[train], sample_weight=weight[train])
+            raw[test] = _aligned_proba(model, X[test], self.classes_)
+            self.fold_[test] = k
+        self.calibrators_ = self._fit_calibrators(raw, y, weight)
+        # Out-of-fold probabilities: each fold calibrated without its own rows.
+        self.oof_proba_ = np.zeros_like(raw)
+        for k, (_, test) in enumerate(splits):
+            others = self.fold_ != k
+            cal = self._fit_calibrators(raw[others], y[others], weight[others])
+            self.oof_proba_[test] = self._calibrate(raw[test], cal)
+        self.estimator_ = clone(self._base()).fit(X, y, sample_weight=weight)
+        self.n_features_in_ = X.shape[1]
+        return self
+
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated class probabilities [shape=(n, n_classes)], columns as ``classes_``."""
+        check_is_fitted(self, "estimator_")
+        raw = _aligned_proba(self.estimator_, np.asarray(X, dtype=np.float32), self.classes_)
+        return self._calibrate(raw, self.calibrators_)
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        """The most probable class of each row."""
+        return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(p, 1e-6, 1 - 1e-6)
+    return np.log(p / (1 - p))
+
+
+def _aligned_proba(model: BaseEstimator, X: np.ndarray, classes: np.ndarray) -> np.ndarray:
+    """predict_proba with columns for every class, zero for classes a fold never saw."""
+    out = np.zeros((X.shape[0], classes.size))
+    proba = model.predict_proba(X)
+    for j, c in enumerate(model.classes_):
+        out[:, int(np.searchsorted(classes, c))] = proba[:, j]
+    return out
+
+
+# Every type a model file may hold. Anything else in a file refuses the load.
+TRUSTED_TYPES = sorted(
+    {
+        "callsieve.classifier.model.CallClassifier",
+        "sklearn.calibration.CalibratedClassifierCV",
+        "sklearn.calibration._CalibratedClassifier",
+        "sklearn.calibration._SigmoidCalibration",
+        "sklearn.isotonic.IsotonicRegression",
+        "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingClassifier",
+        "sklearn.ensemble._hist_gradient_boosting.binning._BinMapper",
+        "sklearn.ensemble._hist_gradient_boosting.predictor.TreePredictor",
+        "sklearn._loss.loss.HalfBinomialLoss",
+        "sklearn._loss.loss.HalfMultinomialLoss",
+        "sklearn._loss.link.LogitLink",
+        "sklearn._loss.link.MultinomialLogit",
+        "sklearn._loss.link.Interval",
+        "sklearn._loss._loss.CyHalfBinomialLoss",
+        "sklearn._loss._loss.CyHalfMultinomialLoss",
+        "sklearn.ensemble._forest.RandomForestClassifier",
+        "sklearn.tree._classes.DecisionTreeClassifier",
+        "sklearn.tree._tree.Tree",
+        "sklearn.model_selection._split.GroupKFold",
+        "sklearn.model_selection._split.StratifiedKFold",
+        "sklearn.utils._bunch.Bunch",
+        "builtins.slice",
+        "numpy.ndarray",
+        "numpy.dtype",
+        "numpy.float64",
+        "numpy.float32",
+        "numpy.int64",
+        "numpy.int32",
+        "numpy.random.mtrand.RandomState",
+        "numpy.random._mt19937.MT19937",
+        "collections.OrderedDict",
+    }
+)
+
+
+class CallModel:
+    """A fitted classifier with what scoring needs to use it correctly.
+
+    Attributes
+    ----------
+    estimator : CallClassifier
+    settings : DescriptorSettings
+    descriptor_names : list of str, column order of the descriptors
+    classes : list of str
+    target : str or None, the class the model was trained to find (None: all classes)
+    summary : dict, training-set summary and cross-validated metrics
+    content_sha256 : str, hash of the estimator and everything above
+    """
+
+    def __init__(
+        self,
+        estimator: CallClassifier,
+        settings: DescriptorSettings,
+        descriptor_names: list[str],
+        target: str | None,
+        summary: dict[str, Any],
+    ) -> None:
+        self.estimator = estimator
+        self.settings = settings
+        self.descriptor_names = list(descriptor_names)
+        self.classes = [str(c) for c in estimator.classes_]
+        self.target = target
+        self.summary = summary
+        self.content_sha256 = ""
+
+    def metadata(self) -> dict[str, Any]:
+        """Everything but the estimator, as plain JSON values."""
+        return {
+            "format": MODEL_FORMAT,
+            "descriptor_version": DESCRIPTOR_VERSION,
+            "settings": self.settings.to_dict(),
+            "descriptor_names": self.descriptor_names,
+            "classes": self.classes,
+            "target": self.target,
+            "summary": self.summary,
+        }
+
+    def check_fits(self, sample_rate_hz: float, where: str) -> None:
+        """Refuse data this model cannot describe (band above Nyquist)."""
+        if self.settings.high_hz > sample_rate_hz / 2.0:
+            raise InputError(
+                f"{where}: the model's band reaches {self.settings.high_hz:g} Hz but the recordings at "
+                f"{sample_rate_hz:g} Hz stop at {sample_rate_hz / 2:g} Hz (Nyquist); "
+                "use a model trained for this band"
+            )
+
+
+def _digest(estimator_bytes: bytes, metadata: dict) -> str:
+    h = hashlib.sha256(estimator_bytes)
+    h.update(json.dumps(metadata, sort_keys=True, default=str).encode())
+    return h.hexdigest()
+
+
+def save_model(model: CallModel, path: str | Path) -> str:
+    """Write the model file; return its content hash (sha256 hex)."""
+    est_bytes = sio.dumps(model.estimator)
+    meta = model.metadata()
+    model.content_sha256 = _digest(est_bytes, meta)
+    payload = {
+        "estimator": est_bytes,
+        "metadata": json.dumps(meta, default=str),
+        "content_sha256": model.content_sha256,
+    }
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_suffix(path.suffix + ".partial")
+    sio.dump(payload, tmp)
+    tmp.replace(path)
+    return model.content_sha256
+
+
+def load_model(path: str | Path) -> CallModel:
+    """Read a model file, refusing any type outside :data:`TRUSTED_TYPES`.
+
+    Raises
+    ------
+    InputError
+        For a file that is not a callsieve model, holds untrusted types, was altered,
+        or was made for another descriptor version.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: no such model file; make one with 'callsieve train'")
+    try:
+        raw = path.read_bytes()
+        outer_untrusted = sio.get_untrusted_types(data=raw)
+        if outer_untrusted:
+            raise InputError(
+                f"{path}: not a callsieve model file (it holds {', '.join(outer_untrusted[:3])})"
+            )
+        payload = sio.loads(raw, trusted=[])
+        est_bytes = payload["estimator"]
+        untrusted = [t for t in sio.get_untrusted_types(data=est_bytes) if t not in TRUSTED_TYPES]
+        if untrusted:
+            raise InputError(
+                f"{path}: refused: the model holds types callsieve does not trust "
+                f"({', '.join(untrusted[:5])})"
+            )
+        estimator = sio.loads(est_bytes, trusted=TRUSTED_TYPES)
+        meta = json.loads(payload["metadata"])
+    except InputError:
+        raise
+    except Exception as exc:  # skops raises many kinds for a damaged archive
+        raise InputError(
+            f"{path}: not a readable callsieve model file ({type(exc).__name__}: {exc})"
+        ) from None
+    if meta.get("format") != MODEL_FORMAT:
+        raise InputError(f"{path}: model format {meta.get('format')!r}, this callsieve reads {MODEL_FORMAT}")
+    if _digest(est_bytes, meta) != payload.get("content_sha256"):
+        raise InputError(f"{path}: content hash does not match; the file was altered or damaged")
+    if meta["descriptor_version"] != DESCRIPTOR_VERSION:
+        raise InputError(
+            f"{path}: made with descriptor version {meta['descriptor_version']}, this callsieve "
+            f"computes version {DESCRIPTOR_VERSION}; retrain the model"
+        )
+    settings_dict = {k: v for k, v in meta["settings"].items() if k != "version"}
+    model = CallModel(
+        estimator,
+        DescriptorSettings(**settings_dict),
+        meta["descriptor_names"],
+        meta["target"],
+        meta["summary"],
+    )
+    model.content_sha256 = payload["content_sha256"]
+    return model
+
+
+def estimator_bytes(model: CallModel) -> bytes:
+    """The estimator as skops bytes (for hashing and transport)."""
+    buf = io.BytesIO(sio.dumps(model.estimator))
+    return buf.getvalue()

@@ -1,0 +1,182 @@
+"""Experiment records in MLflow: parameters, grouped-CV metrics, figures, the model.
+
+The store is MLflow's own default (``sqlite:///mlflow.db`` in the working folder)
+unless a tracking URI is given or ``MLFLOW_TRACKING_URI`` is set; a tracking server's
+URI works the same way.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .labels import BACKGROUND
+from .model import TRUSTED_TYPES, CallModel
+
+__all__ = ["log_training_run", "DEFAULT_EXPERIMENT"]
+
+DEFAULT_EXPERIMENT = "callsieve"
+
+
+def _plots(result: Any, folder: Path) -> list[Path]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    from sklearn.metrics import precision_recall_curve
+
+    val = result.validation
+    classes = val["classes"]
+    paths = []
+    cm = np.array(val["overall"]["confusion"])
+    fig, ax = plt.subplots(figsize=(5.5, 4.5))
+    ax.imshow(cm, cmap="Blues")
+    ax.set_xticks(range(len(classes)), classes, rotation=40, ha="right")
+    ax.set_yticks(range(len(classes)), classes)
+    for i in range(len(classes)):
+        for j in range(len(classes)):
+            ax.text(j, i, str(cm[i, j]), ha="center", va="center", fontsize=8)
+    ax.set_xlabel("decided class (out of fold)")
+    ax.set_ylabel("labelled class")
+    ax.set_title("Grouped cross-validation: confusion (windows)")
+    fig.tight_layout()
+    paths.append(folder / "confusion_matrix.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+
+    fig, ax = plt.subplots(figsize=(5.5, 4.5))
+    oof = result.model.estimator.oof_proba_
+    y = result.examples.y
+    for j, c in enumerate(classes):
+        if c == BACKGROUND:
+            continue
+        p, r, _ = precision_recall_curve(y == c, oof[:, j], sample_weight=result.examples.weight)
+        ap = val["overall"]["metrics"].get(c, {}).get("average_precision", float("nan"))
+        ax.step(r, p, where="post", label=f"{c} (AP {ap:.3f})")
+    ax.set_xlabel("recall")
+    ax.set_ylabel("precision")
+    ax.set_xlim(0, 1)
+    ax.set_ylim(0, 1.02)
+    ax.legend(fontsize=8)
+    ax.set_title("Grouped cross-validation: precision-recall (windows)")
+    fig.tight_layout()
+    paths.append(folder / "pr_curves.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+    return paths
+
+
+def descriptor_importances(result: Any, max_rows: int = 3000) -> list[tuple[str, float]]:
+    """Permutation importance (drop in log-likelihood) of each descriptor, largest first."""
+    from sklearn.inspection import permutation_importance
+
+    ex = result.examples
+    rng = np.random.default_rng(0)
+    idx = rng.choice(ex.y.size, size=min(max_rows, ex.y.size), replace=False)
+    imp = permutation_importance(
+        result.model.estimator,
+        ex.X[idx],
+        ex.y[idx],
+        scoring="neg_log_loss",
+        n_repeats=3,
+        random_state=0,
+        sample_weight=ex.weight[idx],
+    )
+    return sorted(zip(ex.names, imp.importances_mean.tolist(), strict=True), key=lambda t: -t[1])
+
+
+def log_training_run(
+    result: Any,
+    model_path: Path,
+    tracking_uri: str | None = None,
+    experiment: str | None = None,
+    register: str | None = None,
+    set_names: list[str] | None = None,
+) -> dict[str, str]:
+    """Record one training run; return ``run_id``, ``experiment_id`` and ``tracking_uri``.
+
+    Logs parameters (model kind and parameters, descriptor settings, example sampling,
+    validation), grouped-CV metrics per class and per fold, the confusion matrix and PR
+    curves as PNG, descriptor importances, tags naming the training sets, the model file,
+    and the estimator in MLflow's sklearn flavour (skops serialisation). ``register``
+    registers that model under a name and returns its ``model_version``.
+    """
+    import logging
+
+    import mlflow
+    import mlflow.sklearn
+
+    # MLflow's own INFO lines (table creation, new experiment) are noise on a terminal.
+    logging.getLogger("mlflow").setLevel(logging.WARNING)
+    if tracking_uri:
+        mlflow.set_tracking_uri(tracking_uri)
+    mlflow.set_experiment(experiment or DEFAULT_EXPERIMENT)
+    model: CallModel = result.model
+    cfg = result.config.to_dict()
+    params = {f"model.{k}": v for k, v in cfg["params"].items()}
+    params |= {f"descriptors.{k}": v for k, v in model.settings.to_dict().items()}
+    params |= {k: v for k, v in cfg.items() if k not in ("params", "descriptors")}
+    params["target"] = model.target or "all labels"
+    params["classes"] = ",".join(model.classes)
+    out: dict[str, str] = {}
+    with mlflow.start_run() as run:
+        mlflow.log_params({k: str(v) for k, v in params.items()})
+        tags = {
+            "callsieve.training_sets": json.dumps(set_names or []),
+            "callsieve.model_sha256": model.content_sha256,
+            "callsieve.deployments": ",".join(sorted({s["deployment"] for s in model.summary["sets"]})),
+        }
+        for name, counts in model.summary["examples_per_set"].items():
+            tags[f"callsieve.examples.{Path(name).name}"] = json.dumps(counts)
+        mlflow.set_tags(tags)
+        val = result.validation
+        metrics = {}
+        for c, m in val["overall"]["metrics"].items():
+            for key, value in m.items():
+                if key != "examples" and np.isfinite(value):
+                    metrics[f"cv_{key.replace('@', '_at_')}.{c}"] = value
+        mlflow.log_metrics({k.replace("0.5", "0_5"): v for k, v in metrics.items()})
+        for k, fold in enumerate(val["folds"]):
+            for c, m in fold["metrics"].items():
+                if np.isfinite(m["average_precision"]):
+                    mlflow.log_metric(f"fold_average_precision.{c}", m["average_precision"], step=k)
+        mlflow.log_metrics({f"seconds_{k}": v for k, v in result.seconds.items()})
+        with tempfile.TemporaryDirectory() as tmp:
+            folder = Path(tmp)
+            for p in _plots(result, folder):
+                mlflow.log_artifact(str(p), artifact_path="validation")
+            imp = descriptor_importances(result)
+            (folder / "descriptor_importances.csv").write_text(
+                "descriptor,importance\n" + "".join(f"{n},{v:.6g}\n" for n, v in imp)
+            )
+            mlflow.log_artifact(str(folder / "descriptor_importances.csv"), artifact_path="validation")
+            (folder / "training_summary.json").write_text(json.dumps(model.summary, indent=2, default=str))
+            mlflow.log_artifact(str(folder / "training_summary.json"))
+        mlflow.log_artifact(str(model_path), artifact_path="callsieve_model")
+        trusted = sorted(set(TRUSTED_TYPES))
+        info = mlflow.sklearn.log_model(
+            model.estimator,
+            name="model",
+            serialization_format="skops",
+            skops_trusted_types=trusted,
+            registered_model_name=register,
+        )
+        out = {
+            "run_id": run.info.run_id,
+            "experiment_id": run.info.experiment_id,
+            "tracking_uri": mlflow.get_tracking_uri(),
+            "model_uri": info.model_uri,
+        }
+        if register and getattr(info, "registered_model_version", None) is not None:
+            out["model_version"] = str(info.registered_model_version)
+    return out
+
+
+def tracking_uri_in_force(explicit: str | None) -> str:
+    """The store a run goes to: the explicit URI, else MLFLOW_TRACKING_URI, else MLflow's default."""
+    return explicit or os.environ.get("MLFLOW_TRACKING_URI") or "sqlite:///mlflow.db"

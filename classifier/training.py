@@ -1,0 +1,564 @@
+"""Training: examples from labelled sets, grouped cross-validation, the final model.
+
+The same descriptor path as scoring (:func:`callsieve.features.pipeline.describe_file`)
+describes every window of every annotated file; windows that hold a labelled call become
+examples of it, the rest of each file is background, of which a share is kept: the
+loudest in-band windows (the hard ones) and a random draw, each weighted by the inverse
+of its chance of being kept, so that calibrated probabilities refer to all windows.
+"""
+
+from __future__ import annotations
+
+import time
+from collections import Counter
+from collections.abc import Callable
+from dataclasses import dataclass, field, replace
+from datetime import timedelta
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from callsieve.features.descriptors import DescriptorSettings, descriptor_names
+from callsieve.features.pipeline import describe_file
+from callsieve.features.streaming import AudioReadError
+from sklearn.metrics import average_precision_score, confusion_matrix
+
+from .config import TrainingConfig
+from .deployment import Deployment
+from .errors import InputError
+from .labels import BACKGROUND, Annotation
+from .model import CallClassifier, CallModel
+
+__all__ = [
+    "LabelledSet",
+    "ExampleSet",
+    "choose_settings",
+    "collect_examples",
+    "cross_validate",
+    "train_model",
+]
+
+# Resolutions the automatic choice picks from, Hz (frame lengths of round numbers of ms).
+_NICE_RESOLUTIONS = np.array(
+    [
+        0.25,
+        0.5,
+        1,
+        2,
+        2.5,
+        4,
+        5,
+        8,
+        10,
+        12.5,
+        16,
+        20,
+        25,
+        32,
+        40,
+        50,
+        64,
+        80,
+        100,
+        125,
+        160,
+        200,
+        250,
+        320,
+        400,
+        500,
+        1000,
+        2000,
+    ]
+)
+# Labelled time within this distance of a window makes it unusable as background, s.
+_BACKGROUND_MARGIN_S = 0.25
+
+
+@dataclass(frozen=True)
+class LabelledSet:
+    """A deployment and its annotations; ``name`` is the label table it came from."""
+
+    deployment: Deployment
+    annotations: list[Annotation]
+    name: str
+
+
+@dataclass
+class ExampleSet:
+    """Training examples: descriptors, classes, weights, groups, and where each came from."""
+
+    X: np.ndarray
+    y: np.ndarray
+    weight: np.ndarray
+    groups: np.ndarray
+    source: np.ndarray  # label table of each example
+    names: list[str]
+    counts: dict[str, dict[str, int]] = field(default_factory=dict)  # per set, per class
+    windows_described: int = 0
+    hours_described: float = 0.0
+
+
+def _nice_resolution(target_hz: float) -> float:
+    return float(_NICE_RESOLUTIONS[np.argmin(np.abs(np.log(_NICE_RESOLUTIONS / target_hz)))])
+
+
+def choose_settings(
+    annotations: list[Annotation], sample_rate_hz: float, overrides: dict[str, Any] | None = None
+) -> DescriptorSettings:
+    """Band, resolution, window and hop from the labelled calls.
+
+    Band: the 5th to 95th percentile of the labels' edges, widened by 20 % below and 15 %
+    above (the whole band below Nyquist where labels give none). Frames last about a
+    quarter of the median call; windows hold the 90th-percentile call with room to spare
+    and start every quarter window. ``overrides`` (from a config) win over every choice.
+    """
+    overrides = dict(overrides or {})
+    nyquist = sample_rate_hz / 2.0
+    lows = np.array([a.low_hz for a in annotations if a.low_hz is not None])
+    highs = np.array([a.high_hz for a in annotations if a.high_hz is not None])
+    low = float(np.percentile(lows, 5)) * 0.8 if lows.size else 10.0
+    high = float(np.percentile(highs, 95)) * 1.15 if highs.size else 0.45 * sample_rate_hz
+    low = overrides.get("low_hz", max(low, 1.0))
+    high = overrides.get("high_hz", min(high, 0.95 * nyquist))
+    durations = np.array([a.duration_s for a in annotations])
+    frame_s = float(np.clip(np.median(durations) / 6.0, 0.005, 1.0))
+    resolution = _nice_resolution(1.0 / frame_s)
+    resolution = overrides.get("resolution_hz", min(resolution, _nice_resolution((high - low) / 24.0)))
+    frame_hop = overrides.get("frame_hop_s", 1.0 / resolution / 4.0)
+    window = float(np.clip(1.2 * np.percentile(durations, 90) + 1.0 / resolution, 4.0 / resolution, 60.0))
+    window = overrides.get("window_s", round(window / frame_hop) * frame_hop)
+    window_hop = overrides.get("window_hop_s", max(round(window / 4.0 / frame_hop), 1) * frame_hop)
+    noise_span = overrides.get("noise_span_s", max(60.0, 10.0 * window))
+    noise_step = overrides.get("noise_step_s", max(round(5.0 / frame_hop), 1) * frame_hop)
+    rest = {
+        k: v
+        for k, v in overrides.items()
+        if k
+        not in {
+            "low_hz",
+            "high_hz",
+            "resolution_hz",
+            "frame_hop_s",
+            "window_s",
+            "window_hop_s",
+            "noise_span_s",
+            "noise_step_s",
+        }
+    }
+    return DescriptorSettings(
+        low_hz=float(low),
+        high_hz=float(high),
+        resolution_hz=float(resolution),
+        frame_hop_s=float(frame_hop),
+        window_s=float(window),
+        window_hop_s=float(window_hop),
+        noise_span_s=float(noise_span),
+        noise_step_s=float(noise_step),
+        **rest,
+    )
+
+
+def _assign(
+    start: np.ndarray, end: np.ndarray, notes: list[Annotation], min_overlap: float, classes: set[str] | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Class of each window (None-like '' where ambiguous) and whether it is clear of labels."""
+    n = start.size
+    label = np.full(n, "", dtype=object)
+    if not notes:
+        return np.full(n, BACKGROUND, dtype=object), np.ones(n, dtype=bool)
+    ls = np.array([a.start_s for a in notes])
+    le = np.array([a.end_s for a in notes])
+    overlap = np.minimum(end[:, None], le[None, :]) - np.maximum(start[:, None], ls[None, :])
+    need = min_overlap * np.minimum(le - ls, end[0] - start[0])[None, :]
+    share = np.where(overlap >= need, overlap, -np.inf)
+    best = np.argmax(share, axis=1)
+    has = np.isfinite(share[np.arange(n), best])
+    names = np.array([a.label for a in notes], dtype=object)
+    label[has] = names[best[has]]
+    near = (
+        np.minimum(end[:, None], le[None, :] + _BACKGROUND_MARGIN_S)
+        - np.maximum(start[:, None], ls[None, :] - _BACKGROUND_MARGIN_S)
+    ) > 0
+    clear = ~near.any(axis=1)
+    label[clear] = BACKGROUND
+    if classes is not None:  # a binary model: other labels are background examples too
+        other = (label != "") & (label != BACKGROUND) & ~np.isin(label, list(classes))
+        label[other] = BACKGROUND
+    return label, clear
+
+
+def collect_examples(
+    sets: list[LabelledSet],
+    settings: DescriptorSettings,
+    config: TrainingConfig,
+    target: str | None = None,
+    progress: Callable[[str], None] | None = None,
+) -> ExampleSet:
+    """Describe the annotated files of every set and turn windows into examples.
+
+    Parameters
+    ----------
+    sets : list of LabelledSet
+    settings : DescriptorSettings
+    config : TrainingConfig, background ratio, hard fraction and minimum overlap
+    target : str, optional; a binary model of this label against everything else
+    progress : callable, optional, receives one line per file
+
+    Returns
+    -------
+    ExampleSet
+    """
+    names = descriptor_names(settings)
+    rng = np.random.default_rng(config.seed)
+    snr_col = names.index("snr_db")
+    parts_X, parts_y, parts_w, parts_g, parts_s = [], [], [], [], []
+    counts: dict[str, dict[str, int]] = {}
+    n_described, seconds = 0, 0.0
+    keep_classes = {target} if target else None
+    for lset in sets:
+        dep = lset.deployment
+        by_file: dict[str, list[Annotation]] = {}
+        for a in lset.annotations:
+            by_file.setdefault(a.file, []).append(a)
+        files = {f.name: f for f in dep.files}
+        pos_X, pos_y, pos_g = [], [], []
+        bg_X, bg_g = [], []
+        for name in sorted(by_file):
+            rec = files[name]
+            try:
+                tables = list(describe_file(rec.path, dep.chain, settings, dep.channel))
+            except AudioReadError as exc:
+                raise InputError(f"{lset.name}: {exc}; remove its rows or fix the file") from None
+            if not tables:
+                continue
+            values = np.concatenate([t.values for t in tables])
+            start = np.concatenate([t.start_s for t in tables])
+            end = np.concatenate([t.end_s for t in tables])
+            n_described += values.shape[0]
+            seconds += rec.duration_s
+            label, _ = _assign(start, end, by_file[name], config.min_overlap, keep_classes)
+            group = _groups(dep, rec, start, config.group_by)
+            pos = (label != "") & (label != BACKGROUND)
+            pos_X.append(values[pos])
+            pos_y.append(label[pos])
+            pos_g.append(group[pos])
+            bg = label == BACKGROUND
+            bg_X.append(values[bg])
+            bg_g.append(group[bg])
+            if progress:
+                progress(f"{dep.name}/{name}: {int(pos.sum())} labelled windows, {int(bg.sum())} background")
+        X_pos = np.concatenate(pos_X) if pos_X else np.empty((0, len(names)), np.float32)
+        y_pos = np.concatenate(pos_y) if pos_y else np.empty(0, object)
+        g_pos = np.concatenate(pos_g) if pos_g else np.empty(0, object)
+        X_bg = np.concatenate(bg_X) if bg_X else np.empty((0, len(names)), np.float32)
+        g_bg = np.concatenate(bg_g) if bg_g else np.empty(0, object)
+        idx, weight = _sample_background(
+            X_bg[:, snr_col],
+            max(int(config.background_ratio * max(len(y_pos), 1)), 1),
+            config.hard_fraction,
+            rng,
+        )
+        parts_X += [X_pos, X_bg[idx]]
+        parts_y += [y_pos, np.full(idx.size, BACKGROUND, dtype=object)]
+        parts_w += [np.ones(len(y_pos)), weight]
+        parts_g += [g_pos, g_bg[idx]]
+        parts_s += [np.full(len(y_pos) + idx.size, lset.name, dtype=object)]
+        counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size)}
+    X = np.concatenate(parts_X).astype(np.float32)
+    y = np.concatenate(parts_y).astype(str)
+    if np.unique(y).size < 2:
+        raise InputError(
+            "the labelled sets give only one class of windows; label calls in the tables "
+            "(or check --target, and that the calls fall inside annotated files)"
+        )
+    return ExampleSet(
+        X,
+        y,
+        np.concatenate(parts_w),
+        np.concatenate(parts_g).astype(str),
+        np.concatenate(parts_s).astype(str),
+        names,
+        counts,
+        n_described,
+        seconds / 3600.0,
+    )
+
+
+def _groups(dep: Deployment, rec, start_s: np.ndarray, group_by: str) -> np.ndarray:
+    if group_by == "deployment":
+        return np.full(start_s.size, dep.name, dtype=object)
+    if group_by == "file":
+        return np.full(start_s.size, f"{dep.name}/{rec.name}", dtype=object)
+    # Hour of the UTC clock in which each window starts.
+    base = rec.start_utc.replace(minute=0, second=0, microsecond=0)
+    offset = (rec.start_utc - base).total_seconds()
+    hours = np.floor((start_s + offset) / 3600.0).astype(int)
+    labels = {h: f"{dep.name}/{(base + timedelta(hours=int(h))):%Y%m%dT%H}" for h in np.unique(hours)}
+    return np.array([labels[h] for h in hours], dtype=object)
+
+
+def _sample_background(
+    snr_db: np.ndarray, budget: int, hard_fraction: float, rng: np.random.Generator
+) -> tuple[np.ndarray, np.ndarray]:
+    """Indices of kept background windows and their inverse-inclusion weights."""
+    n = snr_db.size
+    if n <= budget:
+        return np.arange(n), np.ones(n)
+    n_hard = int(round(hard_fraction * budget))
+    order = np.argsort(-snr_db, kind="stable")
+    hard = order[:n_hard]
+    rest = order[n_hard:]
+    n_rand = budget - n_hard
+    drawn = rng.choice(rest, size=n_rand, replace=False) if n_rand > 0 else np.empty(0, int)
+    idx = np.concatenate([hard, drawn])
+    weight = np.concatenate([np.ones(hard.size), np.full(drawn.size, rest.size / max(n_rand, 1))])
+    order_idx = np.argsort(idx)
+    return idx[order_idx], weight[order_idx]
+
+
+def _estimator(config: TrainingConfig) -> CallClassifier:
+    return CallClassifier(
+        kind=config.kind,
+        params=config.estimator_params,
+        calibration=config.calibration,
+        class_weight=config.class_weight,
+        folds=config.folds,
+        random_state=config.seed,
+    )
+
+
+def _class_metrics(y: np.ndarray, proba: np.ndarray, classes: list[str], weight: np.ndarray) -> dict:
+    out = {}
+    for i, c in enumerate(classes):
+        if c == BACKGROUND:
+            continue
+        truth = y == c
+        if not truth.any():
+            continue
+        decided = proba[:, i] >= 0.5
+        tp = float(weight[truth & decided].sum())
+        out[c] = {
+            "average_precision": float(average_precision_score(truth, proba[:, i], sample_weight=weight)),
+            "precision_at_0.5": tp / float(weight[decided].sum()) if decided.any() else float("nan"),
+            "recall_at_0.5": tp / float(weight[truth].sum()),
+            "examples": int(truth.sum()),
+        }
+    return out
+
+
+def cross_validate(estimator: CallClassifier, examples: ExampleSet) -> dict[str, Any]:
+    """Metrics of a fitted classifier from its grouped out-of-fold probabilities.
+
+    No group (hour, file or deployment) was on both sides of a fold. Precision, recall
+    and average precision weigh each background example by the inverse of its chance of
+    being kept, so they refer to all windows of the annotated files.
+
+    Returns
+    -------
+    dict
+        ``folds`` (per fold: classes' metrics and confusion matrix), ``overall`` (the same
+        over all out-of-fold probabilities), ``classes``, ``n_folds``.
+    """
+    y = examples.y
+    classes = [str(c) for c in estimator.classes_]
+    oof = estimator.oof_proba_
+    pred = np.array(classes)[np.argmax(oof, axis=1)]
+    folds = []
+    for k in range(int(estimator.fold_.max()) + 1):
+        test = estimator.fold_ == k
+        folds.append(
+            {
+                "metrics": _class_metrics(y[test], oof[test], classes, examples.weight[test]),
+                "confusion": confusion_matrix(y[test], pred[test], labels=classes).tolist(),
+                "test_examples": int(test.sum()),
+            }
+        )
+    return {
+        "classes": classes,
+        "n_folds": len(folds),
+        "folds": folds,
+        "overall": {
+            "metrics": _class_metrics(y, oof, classes, examples.weight),
+            "confusion": confusion_matrix(y, pred, labels=classes).tolist(),
+        },
+    }
+
+
+@dataclass
+class TrainingResult:
+    """The fitted model with what the experiment record needs."""
+
+    model: CallModel
+    examples: ExampleSet
+    validation: dict[str, Any]
+    config: TrainingConfig
+    seconds: dict[str, float]
+
+
+def train_model(
+    sets: list[LabelledSet],
+    config: TrainingConfig,
+    target: str | None = None,
+    progress: Callable[[str], None] | None = None,
+) -> TrainingResult:
+    """Choose settings, collect examples, cross-validate, fit the final model.
+
+    Parameters
+    ----------
+    sets : list of LabelledSet
+    config : TrainingConfig
+    target : str, optional; learn this label against everything else (else every label)
+    progress : callable, optional
+
+    Returns
+    -------
+    TrainingResult
+    """
+    all_notes = [a for s in sets for a in s.annotations]
+    labels = sorted({a.label for a in all_notes})
+    if target is not None and target not in labels:
+        raise InputError(f"--target {target!r} is not a label of the tables (labels: {', '.join(labels)})")
+    chosen_from = [a for a in all_notes if target is None or a.label == target]
+    rate = min(s.deployment.sample_rate_hz for s in sets)
+    try:
+        settings = choose_settings(chosen_from, rate, config.descriptors)
+    except Exception as exc:  # a config whose settings cannot work together
+        raise InputError(f"descriptor settings: {exc}") from None
+    for s in sets:
+        settings.grid.check_sample_rate(s.deployment.sample_rate_hz)
+    t0 = time.perf_counter()
+    if progress:
+        progress(
+            f"settings: band {settings.low_hz:g}-{settings.high_hz:g} Hz, resolution "
+            f"{settings.resolution_hz:g} Hz, frame hop {settings.frame_hop_s:g} s, "
+            f"window {settings.window_s:g} s every {settings.window_hop_s:g} s"
+        )
+    examples = collect_examples(sets, settings, config, target, progress)
+    t1 = time.perf_counter()
+    estimator = _estimator(config).fit(
+        examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
+    )
+    t2 = time.perf_counter()
+    validation = cross_validate(estimator, examples) | {"group_by": config.group_by}
+    t3 = time.perf_counter()
+    summary = {
+        "sets": [
+            {
+                "name": s.name,
+                "deployment": s.deployment.name,
+                "annotations": len(s.annotations),
+                "files": len({a.file for a in s.annotations}),
+            }
+            for s in sets
+        ],
+        "examples_per_set": examples.counts,
+        "examples": dict(Counter(examples.y.tolist())),
+        "windows_described": examples.windows_described,
+        "hours_described": round(examples.hours_described, 4),
+        "config": config.to_dict(),
+        "validation": validation,
+    }
+    model = CallModel(estimator, settings, examples.names, target, summary)
+    seconds = {"describe": t1 - t0, "fit_and_cross_validate": t2 - t1, "metrics": t3 - t2}
+    return TrainingResult(model, examples, validation, replace(config), seconds)
+
+
+def _pair_tables(label_paths: list[Path], deployments: list[Deployment]) -> list[LabelledSet]:
+    """Read each label table against the deployment(s) its rows name (or its files fit)."""
+    import csv
+
+    from .labels import read_label_table
+
+    sets: list[LabelledSet] = []
+    for path in label_paths:
+        try:
+            with open(path, newline="", encoding="utf-8-sig") as fh:
+                reader = csv.DictReader(fh)
+                columns = reader.fieldnames or []
+                files = {(r.get("file") or "").strip() for r in reader}
+        except OSError as exc:
+            raise InputError(f"{path}: cannot read the label table: {exc.strerror}") from None
+        if "deployment" in columns or len(deployments) == 1:
+            notes = read_label_table(path, deployments)
+        else:
+            fits = [d for d in deployments if files <= {f.name for f in d.files} | {x.name for x in d.faults}]
+            if len(fits) != 1:
+                raise InputError(
+                    f"{path}: its files fit {len(fits)} of the deployments given; add a "
+                    "'deployment' column naming each row's manifest name"
+                )
+            notes = read_label_table(path, fits)
+        for dep in deployments:
+            mine = [a for a in notes if a.deployment == dep.name]
+            if mine:
+                sets.append(LabelledSet(dep, mine, str(path)))
+    return sets
+
+
+def train(
+    manifests: list[str | Path],
+    label_tables: list[str | Path],
+    out: str | Path,
+    config_path: str | Path | None = None,
+    target: str | None = None,
+    tracking_uri: str | None = None,
+    experiment: str | None = None,
+    register: str | None = None,
+    track: bool = True,
+    progress: Callable[[str], None] | None = None,
+) -> dict[str, Any]:
+    """Train a model from labelled deployments, save it, and record the experiment.
+
+    Parameters
+    ----------
+    manifests : list of manifest paths (SPEC §1)
+    label_tables : list of label tables (SPEC §2)
+    out : path of the model file to write
+    config_path : training configuration (TOML); None for the defaults
+    target : str, optional; a model of this label against everything else
+    tracking_uri, experiment, register : MLflow store, experiment name, registered model name
+    track : bool, False skips MLflow (for tests and quick trials)
+    progress : callable, optional
+
+    Returns
+    -------
+    dict
+        ``model`` (path), ``content_sha256``, ``settings``, ``classes``, ``examples``,
+        ``cv`` (overall metrics per class), ``seconds`` and, when tracked, ``run``.
+    """
+    from .config import load_training_config
+    from .deployment import load_deployment
+    from .model import save_model
+
+    config = load_training_config(config_path)
+    deployments = [load_deployment(m) for m in manifests]
+    names = [d.name for d in deployments]
+    if len(set(names)) != len(names):
+        raise InputError(
+            f"two manifests share the deployment name {sorted(n for n in names if names.count(n) > 1)[0]!r}"
+        )
+    sets = _pair_tables([Path(p) for p in label_tables], deployments)
+    if not sets:
+        raise InputError("no label table row falls in the deployments given")
+    result = train_model(sets, config, target, progress)
+    out = Path(out)
+    digest = save_model(result.model, out)
+    report: dict[str, Any] = {
+        "model": str(out),
+        "content_sha256": digest,
+        "settings": result.model.settings.to_dict(),
+        "classes": result.model.classes,
+        "examples": result.model.summary["examples"],
+        "examples_per_set": result.model.summary["examples_per_set"],
+        "cv": result.validation["overall"]["metrics"],
+        "cv_folds": result.validation["n_folds"],
+        "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
+    }
+    if track:
+        from .tracking import log_training_run
+
+        report["run"] = log_training_run(
+            result, out, tracking_uri, experiment, register, [s.name for s in sets]
+        )
+    return report

@@ -1,0 +1,419 @@
+"""Contour and band-energy descriptors of analysis windows, in physical units.
+
+One row per analysis window, computed for all windows of a block at once. The table
+:data:`DESCRIPTORS` gives each descriptor's name, unit and meaning; the README prints it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+from ._validation import ParameterError, check_positive
+from .spectrogram import SpectrogramGrid
+
+__all__ = [
+    "DESCRIPTOR_VERSION",
+    "DescriptorSettings",
+    "DESCRIPTORS",
+    "descriptor_names",
+    "describe_windows",
+    "subband_edges_hz",
+    "active_threshold_db",
+]
+
+# Bump when any descriptor changes meaning, so old models are refused on new data.
+DESCRIPTOR_VERSION = "1"
+_TINY = 1e-30
+
+
+@dataclass(frozen=True)
+class DescriptorSettings:
+    """How windows are cut and described. All in physical units.
+
+    Parameters
+    ----------
+    low_hz, high_hz : float, Hz, the analysis band
+    resolution_hz : float, Hz, spectrogram bin spacing (frame length 1/resolution s)
+    frame_hop_s : float, s, time between spectrogram frames
+    window_s : float, s, length of an analysis window
+    window_hop_s : float, s, time between window starts (a multiple of frame_hop_s)
+    noise_span_s : float, s, span of the running percentile of the noise floor
+    noise_step_s : float, s, time between noise-floor estimates (interpolated between)
+    noise_percentile : float, %, percentile of the PSD taken as the noise floor
+    n_subbands : int, equal log-width sub-bands of the band
+    contour_false_alarm : float, probability that a frame of pure noise has its
+        strongest bin stand above the threshold; the threshold on the excess over the
+        noise floor follows from it and the number of bins (see :func:`active_threshold_db`)
+    """
+
+    low_hz: float
+    high_hz: float
+    resolution_hz: float
+    frame_hop_s: float
+    window_s: float
+    window_hop_s: float
+    noise_span_s: float = 60.0
+    noise_step_s: float = 5.0
+    noise_percentile: float = 20.0
+    n_subbands: int = 4
+    contour_false_alarm: float = 0.05
+
+    def __post_init__(self) -> None:
+        for name in (
+            "resolution_hz",
+            "frame_hop_s",
+            "window_s",
+            "window_hop_s",
+            "noise_span_s",
+            "noise_step_s",
+        ):
+            check_positive(name, getattr(self, name))
+        if not 0.0 <= self.low_hz < self.high_hz:
+            raise ParameterError(f"band needs 0 <= low_hz < high_hz, got {self.low_hz:g} .. {self.high_hz:g}")
+        if self.high_hz - self.low_hz < 4 * self.resolution_hz:
+            raise ParameterError("the band must span at least 4 bins of resolution_hz")
+        for name in ("window_hop_s", "noise_step_s"):
+            ratio = getattr(self, name) / self.frame_hop_s
+            if abs(ratio - round(ratio)) > 1e-6 or round(ratio) < 1:
+                raise ParameterError(
+                    f"{name} must be a whole multiple of frame_hop_s ({self.frame_hop_s:g} s)"
+                )
+        if self.window_s < 1.0 / self.resolution_hz + 2 * self.frame_hop_s:
+            raise ParameterError("window_s must hold at least three spectrogram frames")
+        if not 0 < self.contour_false_alarm < 1:
+            raise ParameterError("contour_false_alarm must be in (0, 1)")
+        if not 0 < self.noise_percentile < 100 or self.n_subbands < 1:
+            raise ParameterError("noise_percentile must be in (0, 100) and n_subbands >= 1")
+
+    @property
+    def grid(self) -> SpectrogramGrid:
+        """The spectrogram grid these settings describe."""
+        return SpectrogramGrid(self.resolution_hz, self.frame_hop_s, self.low_hz, self.high_hz)
+
+    @property
+    def frames_per_window(self) -> int:
+        """Spectrogram frames whose window lies inside one analysis window."""
+        return int(round((self.window_s - 1.0 / self.resolution_hz) / self.frame_hop_s)) + 1
+
+    @property
+    def frames_per_window_hop(self) -> int:
+        """Frames between the first frames of consecutive windows."""
+        return int(round(self.window_hop_s / self.frame_hop_s))
+
+    @property
+    def frames_per_noise_step(self) -> int:
+        """Frames between noise-floor steps."""
+        return int(round(self.noise_step_s / self.frame_hop_s))
+
+    @property
+    def noise_span_frames(self) -> int:
+        """Frames in the noise percentile's span."""
+        return max(int(round(self.noise_span_s / self.frame_hop_s)), 1)
+
+    @property
+    def noise_stride(self) -> int:
+        """Subsampling of frames inside the noise span (about 4 frames per second)."""
+        return max(int(round(0.25 / self.frame_hop_s)), 1)
+
+    def to_dict(self) -> dict:
+        """Plain values, for model files and experiment records."""
+        return asdict(self) | {"version": DESCRIPTOR_VERSION}
+
+
+def active_threshold_db(settings: DescriptorSettings, n_bins: int) -> float:
+    """Excess (dB over the mean noise PSD) the strongest of ``n_bins`` bins must reach.
+
+    The power of noise in one bin of one frame is exponentially distributed about its
+    mean, so the largest of n bins exceeds ``ln(n / P_fa)`` times the mean with
+    probability about P_fa (``contour_false_alarm``).
+    """
+    return float(10.0 * np.log10(np.log(n_bins / settings.contour_false_alarm)))
+
+
+def subband_edges_hz(settings: DescriptorSettings) -> np.ndarray:
+    """Edges (Hz) of the equal log-width sub-bands; ``n_subbands + 1`` values."""
+    low = max(settings.low_hz, settings.resolution_hz)
+    return np.geomspace(low, settings.high_hz, settings.n_subbands + 1)
+
+
+# name, unit, meaning
+_CONTOUR = [
+    ("contour_start_hz", "Hz", "frequency of the dominant trace at its first frame above the noise floor"),
+    ("contour_end_hz", "Hz", "frequency of the dominant trace at its last frame above the noise floor"),
+    ("contour_min_hz", "Hz", "lowest frequency of the trace above the noise floor"),
+    ("contour_max_hz", "Hz", "highest frequency of the trace above the noise floor"),
+    ("contour_median_hz", "Hz", "median frequency of the trace above the noise floor"),
+    (
+        "contour_slope_hz_per_s",
+        "Hz/s",
+        "slope of a weighted quadratic fit to the trace, at the window centre",
+    ),
+    ("contour_curvature_hz_per_s2", "Hz/s²", "second derivative of that fit"),
+    ("contour_inflections", "count", "sign changes of the trace's second difference (over 1 bin)"),
+    ("contour_active_fraction", "1", "fraction of the window's frames whose trace stands above the floor"),
+    ("contour_active_duration_s", "s", "time the trace stands above the noise floor"),
+    ("contour_spread_hz", "Hz", "rms deviation of the trace from its quadratic fit"),
+    ("contour_excess_db", "dB", "median excess of the trace over the noise floor, frames above it"),
+]
+_ENERGY = [
+    ("band_level_db", "dB re 1 µPa", "rms SPL in the analysis band over the window"),
+    ("noise_level_db", "dB re 1 µPa", "band level of the noise floor over the window"),
+    ("snr_db", "dB", "in-band signal-to-noise ratio: (band power − noise power) / noise power"),
+    ("peak_to_peak_db", "dB re 1 µPa", "peak-to-peak SPL of the band-limited waveform"),
+    ("spectral_entropy", "1", "Shannon entropy of the window's mean in-band PSD, over its maximum"),
+    ("spectral_centroid_hz", "Hz", "centroid of the PSD excess over the noise floor"),
+    ("bandwidth_10db_hz", "Hz", "width of the run around the excess peak within 10 dB of it"),
+    ("energy_duration_90_s", "s", "time holding the central 90 % of the in-band excess energy"),
+]
+
+
+def descriptor_names(settings: DescriptorSettings) -> list[str]:
+    """Names of the descriptors, in column order."""
+    sub = []
+    for i in range(settings.n_subbands):
+        sub += [f"subband{i + 1}_level_db", f"subband{i + 1}_excess_db"]
+    return [n for n, _, _ in _CONTOUR] + [n for n, _, _ in _ENERGY] + sub
+
+
+def DESCRIPTORS(settings: DescriptorSettings | None = None) -> list[tuple[str, str, str]]:  # noqa: N802
+    """(name, unit, meaning) of every descriptor; sub-band edges follow ``settings``."""
+    n_sub = settings.n_subbands if settings is not None else 4
+    rows = list(_CONTOUR) + list(_ENERGY)
+    for i in range(n_sub):
+        rows.append(
+            (
+                f"subband{i + 1}_level_db",
+                "dB re 1 µPa",
+                f"rms SPL in sub-band {i + 1} of {n_sub} (equal widths in log frequency)",
+            )
+        )
+        rows.append((f"subband{i + 1}_excess_db", "dB", f"sub-band {i + 1} power over its noise-floor power"))
+    return rows
+
+
+def _window_view(x: np.ndarray, first: np.ndarray, width: int) -> np.ndarray:
+    """x[..., first[k] : first[k] + width] for every k, as (..., n_windows, width)."""
+    return sliding_window_view(x, width, axis=-1)[..., first, :]
+
+
+def describe_windows(
+    psd_db: np.ndarray,
+    noise_db: np.ndarray,
+    frequency_hz: np.ndarray,
+    window_first_frame: np.ndarray,
+    settings: DescriptorSettings,
+    peak_to_peak_db: np.ndarray,
+) -> np.ndarray:
+    """Descriptors of analysis windows from PSD frames and the noise floor.
+
+    Parameters
+    ----------
+    psd_db : np.ndarray [shape=(n_freq, n_frames)], dB re 1 µPa²/Hz
+    noise_db : np.ndarray [shape=(n_freq, n_frames)], dB re 1 µPa²/Hz, floor at each frame
+    frequency_hz : np.ndarray [shape=(n_freq,)], Hz, evenly spaced
+    window_first_frame : np.ndarray [shape=(n_windows,)], column of each window's first frame
+    settings : DescriptorSettings
+    peak_to_peak_db : np.ndarray [shape=(n_windows,)], dB re 1 µPa, from the waveform
+
+    Returns
+    -------
+    values : np.ndarray [shape=(n_windows, n_descriptors)], float32, columns as
+        :func:`descriptor_names`
+    """
+    n_w = settings.frames_per_window
+    first = np.asarray(window_first_frame, dtype=np.int64)
+    n_win = first.size
+    names = descriptor_names(settings)
+    if n_win == 0:
+        return np.empty((0, len(names)), dtype=np.float32)
+    f = np.asarray(frequency_hz, dtype=np.float64)
+    df = float(f[1] - f[0])
+    hop = settings.frame_hop_s
+    psd = psd_db.astype(np.float32, copy=False)
+    noise = noise_db.astype(np.float32, copy=False)
+    p_lin = 10.0 ** (psd / 10.0)
+    n_lin = 10.0 ** (noise / 10.0)
+
+    # --- contour: the strongest excess over the floor in each frame -----------------
+    excess_db = psd - noise
+    peak_bin = np.argmax(excess_db, axis=0)
+    cols = np.arange(excess_db.shape[1])
+    peak_db = excess_db[peak_bin, cols]
+    # Parabolic interpolation between bins for a sub-bin frequency.
+    left = excess_db[np.maximum(peak_bin - 1, 0), cols]
+    right = excess_db[np.minimum(peak_bin + 1, f.size - 1), cols]
+    denom = left - 2.0 * peak_db + right
+    with np.errstate(divide="ignore", invalid="ignore"):
+        delta = np.where(denom < 0, 0.5 * (left - right) / denom, 0.0)
+    delta = np.clip(np.nan_to_num(delta), -0.5, 0.5)
+    trace_hz = f[peak_bin] + delta * df
+    active = peak_db >= active_threshold_db(settings, f.size)
+
+    tr = _window_view(trace_hz, first, n_w)  # (n_win, n_w)
+    exc = _window_view(peak_db, first, n_w)
+    act = _main_segment(tr, _window_view(active, first, n_w), exc, _max_jump_hz(settings, df))
+    count = act.sum(axis=1)
+    # Frames weigh by their excess power: frames that only graze the call's ends, and
+    # see its first or last frequency for longer than it lasts, weigh little.
+    w = np.where(act, 10.0 ** (np.minimum(exc, 60.0) / 10.0), 0.0)
+    w = w / np.maximum(w.max(axis=1, keepdims=True), _TINY)
+    tau = (np.arange(n_w) - (n_w - 1) / 2.0) * hop
+    # Weighted least squares f = b0 + b1 tau + b2 tau², batched 3x3 normal equations.
+    powers = np.stack([w * tau**k for k in range(5)], axis=-1).sum(axis=1)  # (n_win, 5)
+    rhs = np.stack([(w * tr * tau**k).sum(axis=1) for k in range(3)], axis=-1)
+    normal = np.stack([powers[:, i : i + 3] for i in range(3)], axis=1)
+    enough = count >= 3
+    coef = np.zeros((n_win, 3))
+    if np.any(enough):
+        reg = np.eye(3) * 1e-9
+        coef[enough] = np.linalg.solve(normal[enough] + reg, rhs[enough][..., None])[..., 0]
+    safe = np.maximum(count, 1)
+    mean_f = (w * tr).sum(axis=1) / np.maximum(w.sum(axis=1), _TINY)
+    coef[~enough, 0] = mean_f[~enough]
+    fit = coef[:, :1] + coef[:, 1:2] * tau + coef[:, 2:3] * tau**2
+    first_act = np.argmax(act, axis=1)
+    last_act = n_w - 1 - np.argmax(act[:, ::-1], axis=1)
+    rows = np.arange(n_win)
+    start_hz = np.where(enough, fit[rows, first_act], tr[rows, first_act])
+    end_hz = np.where(enough, fit[rows, last_act], tr[rows, last_act])
+    masked_lo = np.where(act, tr, np.inf).min(axis=1)
+    masked_hi = np.where(act, tr, -np.inf).max(axis=1)
+    sorted_tr = np.sort(np.where(act, tr, np.inf), axis=1)
+    median_hz = 0.5 * (sorted_tr[rows, (safe - 1) // 2] + sorted_tr[rows, safe // 2])
+    spread = np.sqrt((w * (tr - fit) ** 2).sum(axis=1) / np.maximum(w.sum(axis=1), _TINY))
+    # Inflections: second differences over three consecutive active frames, above one bin.
+    d2 = tr[:, 2:] - 2.0 * tr[:, 1:-1] + tr[:, :-2]
+    ok = act[:, 2:] & act[:, 1:-1] & act[:, :-2] & (np.abs(d2) > df)
+    inflections = _sign_changes(np.where(ok, np.sign(d2), 0.0))
+    excess_med = np.sort(np.where(act, exc, np.inf), axis=1)[rows, (safe - 1) // 2]
+    none = count == 0
+    contour = np.stack(
+        [
+            start_hz,
+            end_hz,
+            masked_lo,
+            masked_hi,
+            median_hz,
+            coef[:, 1],
+            2.0 * coef[:, 2],
+            inflections,
+            count / n_w,
+            count * hop,
+            spread,
+            excess_med,
+        ],
+        axis=1,
+    )
+    contour[none] = 0.0
+    contour[none, 11] = np.max(exc[none], axis=1) if np.any(none) else 0.0
+
+    # --- band energy --------------------------------------------------------------
+    band_p = p_lin.sum(axis=0) * df  # µPa² per frame
+    band_n = n_lin.sum(axis=0) * df
+    win_p = _window_view(band_p, first, n_w).mean(axis=1)
+    win_n = _window_view(band_n, first, n_w).mean(axis=1)
+    band_level = 10.0 * np.log10(np.maximum(win_p, _TINY))
+    noise_level = 10.0 * np.log10(np.maximum(win_n, _TINY))
+    snr = 10.0 * np.log10(np.maximum(win_p - win_n, 1e-3 * win_n) / np.maximum(win_n, _TINY))
+
+    mean_psd = _window_view(p_lin, first, n_w).mean(axis=2)  # (n_freq, n_win)
+    mean_noise = _window_view(n_lin, first, n_w).mean(axis=2)
+    prob = mean_psd / np.maximum(mean_psd.sum(axis=0, keepdims=True), _TINY)
+    entropy = -(prob * np.log(np.maximum(prob, _TINY))).sum(axis=0) / np.log(f.size)
+    excess_spec = np.maximum(mean_psd - mean_noise, 0.0)
+    total_excess = excess_spec.sum(axis=0)
+    centroid = np.where(
+        total_excess > 0,
+        (f[:, None] * excess_spec).sum(axis=0) / np.maximum(total_excess, _TINY),
+        0.5 * (f[0] + f[-1]),
+    )
+    bandwidth = _bandwidth_10db(excess_spec.T, df)
+    frame_excess = np.maximum(band_p - band_n, 0.0)
+    duration90 = _energy_duration(_window_view(frame_excess, first, n_w), hop)
+
+    edges = subband_edges_hz(settings)
+    sub = []
+    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+        sel = (f >= lo - df / 2) & (f < hi + (df / 2 if hi == edges[-1] else -df / 2))
+        if not np.any(sel):
+            sel = np.abs(f - np.sqrt(lo * hi)) == np.min(np.abs(f - np.sqrt(lo * hi)))
+        sp = mean_psd[sel].sum(axis=0) * df
+        sn = mean_noise[sel].sum(axis=0) * df
+        sub += [
+            10.0 * np.log10(np.maximum(sp, _TINY)),
+            10.0 * np.log10(np.maximum(sp, _TINY) / np.maximum(sn, _TINY)),
+        ]
+    energy = np.stack(
+        [
+            band_level,
+            noise_level,
+            snr,
+            np.asarray(peak_to_peak_db, dtype=np.float64),
+            entropy,
+            centroid,
+            bandwidth,
+            duration90,
+        ]
+        + sub,
+        axis=1,
+    )
+    return np.concatenate([contour, energy], axis=1).astype(np.float32)
+
+
+def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:
+    """Largest change of the trace between consecutive frames of one call, Hz.
+
+    Three bins, or a sweep across the whole band in one second, whichever is more.
+    """
+    return max(3.0 * df, (settings.high_hz - settings.low_hz) * settings.frame_hop_s)
+
+
+def _main_segment(
+    trace: np.ndarray, active: np.ndarray, excess: np.ndarray, max_jump_hz: float
+) -> np.ndarray:
+    """Frames of the run that holds each window's strongest frame.
+
+    A run is a stretch of consecutive active frames whose trace moves by at most
+    ``max_jump_hz`` per frame; isolated noise peaks elsewhere in the window drop out.
+    """
+    linked = active[:, 1:] & active[:, :-1] & (np.abs(np.diff(trace, axis=1)) <= max_jump_hz)
+    run = np.concatenate([np.zeros((trace.shape[0], 1), dtype=np.int64), np.cumsum(~linked, axis=1)], axis=1)
+    peak = np.argmax(np.where(active, excess, -np.inf), axis=1)
+    chosen = run[np.arange(trace.shape[0]), peak]
+    return active & (run == chosen[:, None])
+
+
+def _sign_changes(sign: np.ndarray) -> np.ndarray:
+    """Row-wise count of changes between successive non-zero values of ``sign``."""
+    idx = np.where(sign != 0, np.arange(sign.shape[1]), -1)
+    last = np.maximum.accumulate(idx, axis=1)
+    filled = np.where(last >= 0, np.take_along_axis(sign, np.maximum(last, 0), axis=1), 0.0)
+    prev = np.zeros_like(filled)
+    prev[:, 1:] = filled[:, :-1]
+    return ((sign != 0) & (prev != 0) & (sign != prev)).sum(axis=1)
+
+
+def _bandwidth_10db(spec: np.ndarray, df: float) -> np.ndarray:
+    """Width (Hz) of the contiguous run around each row's peak within 10 dB of it."""
+    n_rows, n = spec.shape
+    peak = np.argmax(spec, axis=1)
+    top = spec[np.arange(n_rows), peak]
+    inside = spec >= 0.1 * top[:, None]
+    idx = np.arange(n)
+    left_out = np.maximum.accumulate(np.where(~inside, idx, -1), axis=1)
+    right_out = np.minimum.accumulate(np.where(~inside, idx, n)[:, ::-1], axis=1)[:, ::-1]
+    rows = np.arange(n_rows)
+    width = (right_out[rows, peak] - left_out[rows, peak] - 1) * df
+    return np.where(top > 0, width, 0.0)
+
+
+def _energy_duration(frame_energy: np.ndarray, hop_s: float) -> np.ndarray:
+    """Time (s) between 5 % and 95 % of each row's cumulative energy."""
+    cum = np.cumsum(frame_energy, axis=1)
+    total = cum[:, -1:]
+    i5 = np.argmax(cum >= 0.05 * total, axis=1)
+    i95 = np.argmax(cum >= 0.95 * total, axis=1)
+    return np.where(total[:, 0] > 0, (i95 - i5 + 1) * hop_s, 0.0)
