@@ -66,7 +66,10 @@ class TrainingConfig:
     kind : {'gradient-boosting', 'random-forest'}
     params : dict, estimator parameters (scikit-learn names); defaults per kind
     calibration : {'isotonic', 'sigmoid'}, how probabilities are calibrated
-    class_weight : {'balanced', 'none'}, weighting of classes against imbalance
+    class_weight : {'balanced', 'none'}, weighting of classes against imbalance; default
+        'none' for gradient boosting (weighted boosting costs about three times as much
+        and ranked no better on our tests; calibration restores probabilities) and
+        'balanced' for the random forest
     background_ratio : float, background examples per labelled example
     hard_fraction : float, 0..1, share of the background budget given to the loudest
         in-band background windows (the rest is drawn at random)
@@ -82,7 +85,7 @@ class TrainingConfig:
     kind: str = "gradient-boosting"
     params: dict[str, Any] = field(default_factory=dict)
     calibration: str = "isotonic"
-    class_weight: str = "balanced"
+    class_weight: str = ""
     background_ratio: float = 4.0
     hard_fraction: float = 0.5
     min_overlap: float = 0.5
@@ -92,6 +95,10 @@ class TrainingConfig:
     descriptors: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
+        if self.class_weight == "" and self.kind in MODEL_KINDS:
+            object.__setattr__(
+                self, "class_weight", "none" if self.kind == "gradient-boosting" else "balanced"
+            )
         for name, check, expected in _CONSTRAINTS:
             if not check(getattr(self, name)):
                 raise ParameterError(f"{name} must be {expected}, got {getattr(self, name)!r}")

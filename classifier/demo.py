@@ -74,6 +74,24 @@ def run_demo(
             f"{len(cal['gaps'])} gaps"
         )
     summary["seconds"]["calibration"] = round(time.perf_counter() - t1, 1)
+
+    # Train on the training site: every label plus background, the default configuration,
+    # experiments recorded in the demo's own MLflow store.
+    t2 = time.perf_counter()
+    from .training import train
+
+    tracking_uri = f"sqlite:///{(out / 'mlflow.db').resolve()}"
+    say(f"demo: training on {summary['training_labels']} (experiments in {tracking_uri})")
+    report = train(
+        [summary["training_manifest"]],
+        [summary["training_labels"]],
+        out / "models" / "demo-model.skops",
+        tracking_uri=tracking_uri,
+        experiment="callsieve-demo",
+        progress=None if log is None else (lambda line: None),
+    )
+    summary["training"] = report
+    summary["seconds"]["training"] = round(time.perf_counter() - t2, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
 
@@ -109,6 +127,25 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
                 f"  {name:<12} {cal['files']} files, {cal['recorded_hours']:.2f} h recorded, "
                 f"{cal['gaps']} gaps, {cal['first_start_utc']} .. {cal['last_end_utc']}, "
                 f"clip from {cal['lowest_clip_level_db']:.1f} dB re 1 µPa (0-pk)"
+            )
+    if "training" in summary:
+        tr = summary["training"]
+        st = tr["settings"]
+        lines += ["", "Training (grouped cross-validation by recording hour, windows)"]
+        lines.append(
+            f"  band {st['low_hz']:g}-{st['high_hz']:g} Hz, windows of {st['window_s']:g} s every "
+            f"{st['window_hop_s']:g} s; model {tr['model']}"
+        )
+        for c, m in sorted(tr["cv"].items()):
+            marker = "  (target)" if c == summary["target_label"] else ""
+            lines.append(
+                f"    {c:<14} average precision {m['average_precision']:.3f}, precision "
+                f"{m['precision_at_0.5']:.3f} and recall {m['recall_at_0.5']:.3f} at 0.5{marker}"
+            )
+        if "run" in tr:
+            lines.append(
+                f"  experiment run {tr['run']['run_id']}; browse with: "
+                f"mlflow ui --backend-store-uri {tr['run']['tracking_uri']}"
             )
     lines += [
         "",

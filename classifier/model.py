@@ -142,8 +142,11 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         ----------
         X : np.ndarray [shape=(n, n_descriptors)], descriptors in physical units
         y : np.ndarray [shape=(n,)], class labels
-        sample_weight : np.ndarray [shape=(n,)], optional; inverse sampling probabilities
-            make the calibrated probabilities those of the population of windows
+        sample_weight : np.ndarray [shape=(n,)], optional; weights of the calibration fit.
+            Inverse sampling probabilities make the calibrated probabilities those of
+            the population of windows. The estimator itself ranks, balancing classes by
+            ``class_weight`` (weighted boosting costs several times as much and ranks
+            no better).
         groups : np.ndarray [shape=(n,)], optional; no group is split across folds
         """
         X = np.asarray(X, dtype=np.float32)
@@ -156,7 +159,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         raw = np.zeros((y.size, self.classes_.size))
         self.fold_ = np.zeros(y.size, dtype=int)
         for k, (train, test) in enumerate(splits):
-            model = clone(self._base()).fit(X[train], y[train], sample_weight=weight[train])
+            model = clone(self._base()).fit(X[train], y[train])
             raw[test] = _aligned_proba(model, X[test], self.classes_)
             self.fold_[test] = k
         self.calibrators_ = self._fit_calibrators(raw, y, weight)
@@ -166,7 +169,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             others = self.fold_ != k
             cal = self._fit_calibrators(raw[others], y[others], weight[others])
             self.oof_proba_[test] = self._calibrate(raw[test], cal)
-        self.estimator_ = clone(self._base()).fit(X, y, sample_weight=weight)
+        self.estimator_ = clone(self._base()).fit(X, y)
         self.n_features_in_ = X.shape[1]
         return self
 

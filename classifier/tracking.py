@@ -159,12 +159,17 @@ def log_training_run(
             mlflow.log_artifact(str(folder / "training_summary.json"))
         mlflow.log_artifact(str(model_path), artifact_path="callsieve_model")
         trusted = sorted(set(TRUSTED_TYPES))
+        # Naming the requirements spares MLflow inferring them (seconds of imports).
+        from importlib.metadata import version
+
+        requirements = [f"{pkg}=={version(pkg)}" for pkg in ("callsieve", "scikit-learn", "skops", "numpy")]
         info = mlflow.sklearn.log_model(
             model.estimator,
             name="model",
             serialization_format="skops",
             skops_trusted_types=trusted,
             registered_model_name=register,
+            pip_requirements=requirements,
         )
         out = {
             "run_id": run.info.run_id,

@@ -9,15 +9,18 @@ from callsieve.classifier.cli import main
 
 def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     out = tmp_path / "demo"
-    assert main(["demo", str(out), "--hours", "1", "--seed", "5", "--quiet"]) == 0
+    assert main(["demo", str(out), "--hours", "2", "--seed", "5", "--quiet"]) == 0
     page = capsys.readouterr().out
     assert "invented scenario" in page and "candidates for trained analysts" in page
     scenario = json.loads((out / "scenario.json").read_text())
-    assert scenario["seed"] == 5 and scenario["files"]["south-slope"] == 2
+    assert scenario["seed"] == 5 and scenario["files"]["south-slope"] == 4
     for site in ("north-shelf", "south-slope"):
         assert (out / site / "manifest.toml").exists()
     assert (out / "north-shelf" / "labels.csv").exists() and (out / "south-slope" / "truth.csv").exists()
     assert "Calibration" in page
+    # The training step: a model file, and the experiment in the demo's own MLflow store.
+    assert "Training" in page and "average precision" in page
+    assert (out / "models" / "demo-model.skops").exists() and (out / "mlflow.db").exists()
 
 
 def test_demo_refuses_a_foreign_folder(tmp_path, capsys):

@@ -133,13 +133,15 @@ def test_same_pressure_same_descriptors_at_two_rates_and_two_gains(tmp_path):
     np.testing.assert_allclose(v_gain, v_lo, rtol=1e-3, atol=0.05)
 
 
-def test_descriptors_do_not_depend_on_block_size(tmp_path):
+@pytest.mark.parametrize("fs", [2000, 8000])
+def test_descriptors_do_not_depend_on_block_size(tmp_path, fs):
+    # At 8 kHz the analysis runs decimated (factor 5); block edges must not show either way.
     rng = np.random.default_rng(4)
-    p = _call_scene(2000, rng)
-    s_a, v_a, c_a = _describe(tmp_path, p, 2000, CHAIN, "a.wav", block_s=600.0)
-    s_b, v_b, c_b = _describe(tmp_path, p, 2000, CHAIN, "a.wav", block_s=23.0)
+    p = _call_scene(fs, rng)
+    s_a, v_a, c_a = _describe(tmp_path, p, fs, CHAIN, "a.wav", block_s=600.0)
+    s_b, v_b, c_b = _describe(tmp_path, p, fs, CHAIN, "a.wav", block_s=23.0)
     np.testing.assert_array_equal(s_a, s_b)
-    np.testing.assert_array_equal(v_a, v_b)
+    np.testing.assert_allclose(v_a, v_b, rtol=1e-6, atol=1e-4)
     np.testing.assert_array_equal(c_a, c_b)
 
 
