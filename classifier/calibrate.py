@@ -115,8 +115,7 @@ def format_calibration_summary(summary: dict[str, Any], max_gaps: int = 10) -> s
     for f in s["failed_files"]:
         lines.append(f"failed           {f['file']}: {f['error']}")
     lines.append(
-        f"response         {'flat' if s['flat_response'] else 'from tables'}, "
-        f"full scale {s['full_scale_volts']:g} V"
+        f"response         {'flat' if s['flat_response'] else 'from tables'}, full scale {s['full_scale_volts']:g} V"
     )
     lines.append("  band (Hz)   system (dB re 1 V/µPa)   clip level (dB re 1 µPa, 0-pk)")
     for r in s["response"]:

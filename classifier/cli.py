@@ -12,6 +12,7 @@ from pathlib import Path
 from callsieve.features._validation import ParameterError
 
 from .errors import InputError
+from .export import CAUTION
 
 __all__ = ["main", "build_parser"]
 
@@ -92,8 +93,7 @@ def format_training_report(report: dict) -> str:
         f"band             {s['low_hz']:g}-{s['high_hz']:g} Hz, resolution {s['resolution_hz']:g} Hz, "
         f"window {s['window_s']:g} s every {s['window_hop_s']:g} s",
         "examples         " + ", ".join(f"{k} {v}" for k, v in sorted(report["examples"].items())),
-        f"grouped CV       {report['cv_folds']} folds; per class: average precision, precision and "
-        "recall at 0.5",
+        f"grouped CV       {report['cv_folds']} folds; per class: average precision, precision and recall at 0.5",
     ]
     for c, m in sorted(report["cv"].items()):
         lines.append(
@@ -106,6 +106,47 @@ def format_training_report(report: dict) -> str:
         if "model_version" in r:
             lines.append(f"registered       version {r['model_version']}")
     return "\n".join(lines)
+
+
+def _cmd_score(args: argparse.Namespace) -> int:
+    from .scoring import score_deployment
+
+    summary = score_deployment(
+        args.model,
+        args.deployment,
+        args.db,
+        threshold=args.threshold,
+        jobs=args.jobs,
+        scheduler=args.scheduler,
+        progress=_progress(args),
+    )
+    hps = summary["hours_per_second"]
+    print(
+        f"run {summary['run_id']} of {summary['deployment']}: scored {summary['files']} files "
+        f"({summary['recorded_hours']:.2f} h) in {summary['seconds']:.1f} s"
+        + (f", {hps:.2f} h of audio per second" if hps else "")
+        + f"; {summary['skipped']} already done; {summary['detections']} detections in {args.db}"
+    )
+    for f in summary["failed"]:
+        print(f"failed: {f['file']}: {f['error']}")
+    print(CAUTION)
+    if summary["failed"]:
+        print(
+            f"callsieve: error: {len(summary['failed'])} file(s) could not be scored (listed above); fix or "
+            "remove them and run the same command again",
+            file=sys.stderr,
+        )
+        return EXIT_FAILED
+    return EXIT_OK
+
+
+def _cmd_export(args: argparse.Namespace) -> int:
+    from .export import export_detections
+
+    result = export_detections(args.db, args.out, run_id=args.run, label=args.label, min_confidence=args.min_confidence)
+    print(f"wrote {result['rows']} detections of run {result['run_id']} to {result['out']}")
+    print(CAUTION)
+    return EXIT_OK
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -158,9 +199,7 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="MANIFEST",
         help="deployment manifest (repeat for several)",
     )
-    p.add_argument(
-        "--labels", action="append", required=True, metavar="CSV", help="label table (repeat for several)"
-    )
+    p.add_argument("--labels", action="append", required=True, metavar="CSV", help="label table (repeat for several)")
     p.add_argument("--out", required=True, metavar="MODEL", help="model file to write")
     p.add_argument("--config", metavar="TOML", help="training configuration (see configs/)")
     p.add_argument("--target", metavar="LABEL", help="learn this label against everything else")
@@ -168,6 +207,29 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--experiment", metavar="NAME", help="MLflow experiment (default 'callsieve')")
     p.add_argument("--register", metavar="NAME", help="register the model under this name")
     p.set_defaults(func=_cmd_train)
+
+    p = verbs.add_parser("score", parents=[common], help="screen a deployment with a model into a detection store")
+    p.add_argument("model", metavar="MODEL", help="model file from 'callsieve train'")
+    p.add_argument("--deployment", required=True, metavar="MANIFEST", help="deployment manifest")
+    p.add_argument("--db", required=True, metavar="DB", help="detection store (SQLite; made if missing)")
+    p.add_argument(
+        "--threshold",
+        type=float,
+        default=0.1,
+        metavar="P",
+        help="probability below which nothing is stored (default 0.1)",
+    )
+    p.add_argument("--jobs", type=int, default=1, metavar="N", help="worker processes on this machine")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="address of a running Dask scheduler")
+    p.set_defaults(func=_cmd_score)
+
+    p = verbs.add_parser("export", parents=[common], help="write a run's detections as CSV or Parquet")
+    p.add_argument("db", metavar="DB", help="detection store")
+    p.add_argument("--out", required=True, metavar="CSV", help="output file (.csv, or .parquet)")
+    p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
+    p.add_argument("--label", metavar="L", help="only this class")
+    p.add_argument("--min-confidence", type=float, metavar="P", help="only detections at or above P")
+    p.set_defaults(func=_cmd_export)
     return parser
 
 

@@ -96,9 +96,7 @@ class TrainingConfig:
 
     def __post_init__(self) -> None:
         if self.class_weight == "" and self.kind in MODEL_KINDS:
-            object.__setattr__(
-                self, "class_weight", "none" if self.kind == "gradient-boosting" else "balanced"
-            )
+            object.__setattr__(self, "class_weight", "none" if self.kind == "gradient-boosting" else "balanced")
         for name, check, expected in _CONSTRAINTS:
             if not check(getattr(self, name)):
                 raise ParameterError(f"{name} must be {expected}, got {getattr(self, name)!r}")
@@ -111,9 +109,7 @@ class TrainingConfig:
         known = {f.name for f in fields(DescriptorSettings)}
         bad = set(self.descriptors) - known
         if bad:
-            raise ParameterError(
-                f"descriptors {', '.join(sorted(bad))} unknown; known: {', '.join(sorted(known))}"
-            )
+            raise ParameterError(f"descriptors {', '.join(sorted(bad))} unknown; known: {', '.join(sorted(known))}")
 
     @property
     def estimator_params(self) -> dict[str, Any]:
@@ -180,9 +176,7 @@ def load_training_config(path: str | Path | None) -> TrainingConfig:
     values: dict[str, Any] = {}
     for table, content in doc.items():
         if table not in _TABLES:
-            raise InputError(
-                f"{path}: [{table}]: unknown table; expected {', '.join('[' + t + ']' for t in _TABLES)}"
-            )
+            raise InputError(f"{path}: [{table}]: unknown table; expected {', '.join('[' + t + ']' for t in _TABLES)}")
         if not isinstance(content, dict):
             raise InputError(f"{path}: {table} must be a table")
         if _TABLES[table] is None:
@@ -190,9 +184,7 @@ def load_training_config(path: str | Path | None) -> TrainingConfig:
             continue
         for key, value in content.items():
             if key not in _TABLES[table]:
-                raise InputError(
-                    f"{path}: [{table}] {key}: unknown field; known: {', '.join(_TABLES[table])}"
-                )
+                raise InputError(f"{path}: [{table}] {key}: unknown field; known: {', '.join(_TABLES[table])}")
             values[_TABLES[table][key]] = value
     try:
         return TrainingConfig(**values)

@@ -111,8 +111,7 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
     for label in labels:
         marker = "  (target)" if label == summary["target_label"] else ""
         lines.append(
-            f"    {label:<14} {summary['calls'][names[0]][label]:>5} / "
-            f"{summary['calls'][names[1]][label]:<5}{marker}"
+            f"    {label:<14} {summary['calls'][names[0]][label]:>5} / {summary['calls'][names[1]][label]:<5}{marker}"
         )
     snr = summary.get("survey_target_snr_db", {})
     if snr:

@@ -281,9 +281,7 @@ def read_response_table(path: Path, value_column: str, where: str) -> ResponseCu
         try:
             f, v = float(row["frequency_hz"]), float(row[value_column])
         except (TypeError, ValueError):
-            raise InputError(
-                f"{path}: row {row_no}: frequency_hz and {value_column} must be numbers"
-            ) from None
+            raise InputError(f"{path}: row {row_no}: frequency_hz and {value_column} must be numbers") from None
         if not (np.isfinite(f) and np.isfinite(v)) or f <= 0:
             raise InputError(f"{path}: row {row_no}: frequency_hz must be > 0 and values finite")
         if freq and f <= freq[-1]:
@@ -336,11 +334,7 @@ def _check_keys(doc: dict, path: Path) -> None:
             hint = difflib.get_close_matches(table, _KNOWN, n=1)
             raise InputError(
                 f"{path}: [{table}]: unknown table"
-                + (
-                    f"; did you mean [{hint[0]}]?"
-                    if hint
-                    else "; expected [deployment], [site], [calibration]"
-                )
+                + (f"; did you mean [{hint[0]}]?" if hint else "; expected [deployment], [site], [calibration]")
             )
         if not isinstance(value, dict):
             raise InputError(f"{path}: {table}: must be a table ([{table}])")
@@ -349,11 +343,7 @@ def _check_keys(doc: dict, path: Path) -> None:
                 hint = difflib.get_close_matches(key, _KNOWN[table], n=1)
                 raise InputError(
                     f"{path}: [{table}] {key}: unknown field"
-                    + (
-                        f"; did you mean {hint[0]}?"
-                        if hint
-                        else f"; known: {', '.join(sorted(_KNOWN[table]))}"
-                    )
+                    + (f"; did you mean {hint[0]}?" if hint else f"; known: {', '.join(sorted(_KNOWN[table]))}")
                 )
 
 
@@ -461,14 +451,11 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
             faults.append(
                 FileFault(
                     f.name,
-                    f"sample rate {f.info.sample_rate_hz} Hz differs from "
-                    f"the deployment's {deployment_rate} Hz",
+                    f"sample rate {f.info.sample_rate_hz} Hz differs from the deployment's {deployment_rate} Hz",
                 )
             )
         elif channel >= f.info.channels:
-            faults.append(
-                FileFault(f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist")
-            )
+            faults.append(FileFault(f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist"))
         else:
             usable.append(f)
     usable.sort(key=lambda f: (f.start_utc, f.name))

@@ -89,17 +89,13 @@ def read_label_table(path: str | Path, deployments: list[Deployment]) -> list[An
                 f"{path}: covers {len(by_name)} deployments, so it needs a 'deployment' column "
                 "with each row's manifest name"
             )
-        files = {
-            name: {f.name: f for f in d.files} | {x.name: None for x in d.faults}
-            for name, d in by_name.items()
-        }
+        files = {name: {f.name: f for f in d.files} | {x.name: None for x in d.faults} for name, d in by_name.items()}
         out: list[Annotation] = []
         for row_no, row in enumerate(reader, start=2):
             where = f"{path}: row {row_no}"
             if None in row:
                 raise InputError(
-                    f"{where}: more fields than columns (a comma inside a value? labels are "
-                    "free text without commas)"
+                    f"{where}: more fields than columns (a comma inside a value? labels are free text without commas)"
                 )
             if "deployment" in columns and (row.get("deployment") or "").strip():
                 dep_name = row["deployment"].strip()

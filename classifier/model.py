@@ -97,9 +97,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             splitter = StratifiedGroupKFold(n_splits=n, shuffle=True, random_state=self.random_state)
             return list(splitter.split(X, y, groups))
         n = int(min(self.folds, np.min(np.unique(y, return_counts=True)[1])))
-        return list(
-            StratifiedKFold(n_splits=max(n, 2), shuffle=True, random_state=self.random_state).split(X, y)
-        )
+        return list(StratifiedKFold(n_splits=max(n, 2), shuffle=True, random_state=self.random_state).split(X, y))
 
     def _fit_calibrators(self, raw: np.ndarray, y: np.ndarray, weight: np.ndarray) -> list:
         columns = [1] if len(self.classes_) == 2 else range(len(self.classes_))
@@ -328,25 +326,20 @@ def load_model(path: str | Path) -> CallModel:
         raw = path.read_bytes()
         outer_untrusted = sio.get_untrusted_types(data=raw)
         if outer_untrusted:
-            raise InputError(
-                f"{path}: not a callsieve model file (it holds {', '.join(outer_untrusted[:3])})"
-            )
+            raise InputError(f"{path}: not a callsieve model file (it holds {', '.join(outer_untrusted[:3])})")
         payload = sio.loads(raw, trusted=[])
         est_bytes = payload["estimator"]
         untrusted = [t for t in sio.get_untrusted_types(data=est_bytes) if t not in TRUSTED_TYPES]
         if untrusted:
             raise InputError(
-                f"{path}: refused: the model holds types callsieve does not trust "
-                f"({', '.join(untrusted[:5])})"
+                f"{path}: refused: the model holds types callsieve does not trust ({', '.join(untrusted[:5])})"
             )
         estimator = sio.loads(est_bytes, trusted=TRUSTED_TYPES)
         meta = json.loads(payload["metadata"])
     except InputError:
         raise
     except Exception as exc:  # skops raises many kinds for a damaged archive
-        raise InputError(
-            f"{path}: not a readable callsieve model file ({type(exc).__name__}: {exc})"
-        ) from None
+        raise InputError(f"{path}: not a readable callsieve model file ({type(exc).__name__}: {exc})") from None
     if meta.get("format") != MODEL_FORMAT:
         raise InputError(f"{path}: model format {meta.get('format')!r}, this callsieve reads {MODEL_FORMAT}")
     if _digest(est_bytes, meta) != payload.get("content_sha256"):

@@ -399,9 +399,7 @@ def _write_manifest(site: RecorderSite, folder: Path) -> Path:
             with open(folder / fname, "w", newline="") as fh:
                 w = csv.writer(fh)
                 w.writerow(["frequency_hz", col])
-                w.writerows(
-                    [[f"{f:g}", f"{v:g}"] for f, v in zip(curve.frequency_hz, curve.level_db, strict=True)]
-                )
+                w.writerows([[f"{f:g}", f"{v:g}"] for f, v in zip(curve.frequency_hz, curve.level_db, strict=True)])
         cal = 'preamp_gain_csv = "preamp.csv"\nhydrophone_sensitivity_csv = "hydrophone.csv"\n'
     else:
         cal = (
@@ -505,8 +503,7 @@ def _write_site(site: RecorderSite, out: Path, hours: float, rng: np.random.Gene
                     "file": name,
                     "start_s": round(rel0, 4),
                     "end_s": round(rel0 + call.shape.duration_s, 4),
-                    "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3]
-                    + "Z",
+                    "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
                     "label": call.label,
                     "low_hz": low,
                     "high_hz": high,
@@ -563,8 +560,7 @@ def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> d
     calls_table = out / "calls.csv"
     _write_csv(calls_table, train.calls + survey.calls, CALL_COLUMNS)
     counts = {
-        t.site.name: {c.label: sum(1 for r in t.calls if r["label"] == c.label) for c in CALL_TYPES}
-        for t in truths
+        t.site.name: {c.label: sum(1 for r in t.calls if r["label"] == c.label) for c in CALL_TYPES} for t in truths
     }
     snr = np.array([r["snr_db"] for r in survey.calls if r["label"] == TARGET_LABEL])
     summary = {
@@ -579,9 +575,7 @@ def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> d
         "calls_table": str(calls_table),
         "calls": counts,
         "files": {t.site.name: len(t.files) for t in truths},
-        "survey_target_snr_db": {
-            f"p{q}": round(float(np.percentile(snr, q)), 1) for q in (10, 25, 50, 75, 90)
-        }
+        "survey_target_snr_db": {f"p{q}": round(float(np.percentile(snr, q)), 1) for q in (10, 25, 50, 75, 90)}
         if snr.size
         else {},
         "sites": [

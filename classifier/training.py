@@ -436,9 +436,7 @@ def train_model(
         )
     examples = collect_examples(sets, settings, config, target, progress)
     t1 = time.perf_counter()
-    estimator = _estimator(config).fit(
-        examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
-    )
+    estimator = _estimator(config).fit(examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups)
     t2 = time.perf_counter()
     validation = cross_validate(estimator, examples) | {"group_by": config.group_by}
     t3 = time.perf_counter()
@@ -558,7 +556,5 @@ def train(
     if track:
         from .tracking import log_training_run
 
-        report["run"] = log_training_run(
-            result, out, tracking_uri, experiment, register, [s.name for s in sets]
-        )
+        report["run"] = log_training_run(result, out, tracking_uri, experiment, register, [s.name for s in sets])
     return report

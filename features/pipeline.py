@@ -38,6 +38,8 @@ class WindowTable:
     start_s, end_s : np.ndarray [shape=(n,)], s from the file's start
     values : np.ndarray [shape=(n, n_descriptors)], float32, physical units
     clipped : np.ndarray [shape=(n,)], bool, a sample reached full scale in the window
+    segment_s : np.ndarray [shape=(n, 2)], s from the file's start: start and end of
+        each window's main trace (the window itself where it has none)
     """
 
     window_index: np.ndarray
@@ -45,6 +47,7 @@ class WindowTable:
     end_s: np.ndarray
     values: np.ndarray
     clipped: np.ndarray
+    segment_s: np.ndarray
 
 
 def _frame_total(n_samples: int, fs: float, settings: DescriptorSettings) -> int:
@@ -171,9 +174,13 @@ def _describe(
         pressure = signal.oaconvolve(analysed.astype(np.float64), fir, mode="same")
         p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
         clipped = _window_clipped(raw, q * w_start - raw0, int(round(settings.window_s * fs)))
-        values = describe_windows(spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p)
+        values, segment = describe_windows(
+            spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p
+        )
         start_s = w_start / fs_a
-        yield WindowTable(k, start_s, start_s + window_len_a / fs_a, values, clipped)
+        yield WindowTable(
+            k, start_s, start_s + window_len_a / fs_a, values, clipped, start_s[:, None] + segment
+        )
 
 
 def _window_peak_to_peak(pressure: np.ndarray, offsets: np.ndarray, length: int) -> np.ndarray:

@@ -1,0 +1,438 @@
+"""Scoring whole deployments: one file at a time, resumable, on one machine or a cluster.
+
+The unit of work is one file: :func:`score_file` is a pure function from (model, file)
+to that file's detections and window count. Workers (joblib processes or Dask workers)
+compute it; only the process that holds the store writes, one transaction per file, so
+a run stopped at any moment and started again carries on and ends with the same
+detections as an uninterrupted run.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import platform
+import socket
+import sys
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from functools import lru_cache
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from callsieve.features.calibration import RecordingChain, pressure_from_samples
+from callsieve.features.levels import band_spl_db
+from callsieve.features.pipeline import CLIP_THRESHOLD, describe_file
+from callsieve.features.streaming import AudioReader, AudioReadError
+
+from .calibrate import utc_iso
+from .deployment import Deployment, load_deployment, parse_file_start
+from .detections import pick_detections
+from .errors import InputError
+from .model import CallModel, load_model
+from .store import (
+    Transaction,
+    now_utc,
+    open_store,
+    replace_file_result,
+    upsert_deployment,
+    upsert_file,
+)
+
+__all__ = ["FileResult", "score_file", "score_deployment", "DEFAULT_THRESHOLD"]
+
+DEFAULT_THRESHOLD = 0.1
+# Seconds of audio on each side of a detection from which its noise level is taken.
+_NOISE_CONTEXT_S = 10.0
+
+
+@dataclass
+class FileResult:
+    """What scoring one file gave: detections as store rows, or the error."""
+
+    name: str
+    status: str  # 'done' or 'failed'
+    error: str | None = None
+    windows: int = 0
+    rows: list[tuple] = field(default_factory=list)
+    seconds: float = 0.0
+
+
+def _levels(
+    reader: AudioReader, fs: int, chain: RecordingChain, start_s: float, end_s: float, low_hz: float, high_hz: float
+) -> tuple[float, float, int]:
+    """Received level (dB re 1 µPa), SNR (dB) and clip flag of one detection."""
+    ctx = int(_NOISE_CONTEXT_S * fs)
+    taps = chain.fir_length(fs)
+    a, b = int(round(start_s * fs)), max(int(round(end_s * fs)), int(round(start_s * fs)) + 2)
+    r0, r1 = max(a - ctx - taps, 0), min(b + ctx + taps, reader.frames)
+    raw = reader.read(r0, r1)
+    p = pressure_from_samples(raw.astype(np.float64), fs, chain)
+    seg = p[a - r0 : b - r0]
+    rl = float(band_spl_db(seg, fs, low_hz, high_hz))
+    clipped = int(np.any(np.abs(raw[a - r0 : b - r0]) >= CLIP_THRESHOLD))
+    # Noise: median band power of 1-s pieces around the detection, clear of it by 0.5 s.
+    piece = fs
+    starts = np.arange(max(a - ctx, 0), max(b + ctx - piece, 0) + 1, piece)
+    starts = starts[((starts + piece) <= a - fs // 2) | (starts >= b + fs // 2)]
+    starts = starts[(starts >= r0) & (starts + piece <= r1)]
+    if starts.size == 0:
+        return rl, float("nan"), clipped
+    pieces = np.stack([p[s - r0 : s - r0 + piece] for s in starts])
+    noise = float(np.median(10.0 ** (band_spl_db(pieces, fs, low_hz, high_hz) / 10.0)))
+    signal_power = 10.0 ** (rl / 10.0) - noise
+    snr = 10.0 * np.log10(max(signal_power, 1e-3 * noise) / noise) if noise > 0 else float("nan")
+    return rl, float(snr), clipped
+
+
+def score_file(
+    model: CallModel,
+    path: str | Path,
+    name: str,
+    chain: RecordingChain,
+    channel: int,
+    threshold: float,
+    block_s: float = 600.0,
+    threads: int | None = None,
+) -> FileResult:
+    """Detections of one file: describe, predict, pick peaks, measure levels.
+
+    Parameters
+    ----------
+    model : CallModel
+    path : the sound file; ``name`` is how the deployment calls it
+    chain : RecordingChain of the deployment
+    channel : int
+    threshold : float, probability floor below which nothing is kept
+    block_s : float, s, recorded time per block (results do not depend on it)
+    threads : int, optional, BLAS/OpenMP threads in this process (for parallel workers)
+
+    Returns
+    -------
+    FileResult
+        Rows ``(start_s, end_s, low_hz, high_hz, label, confidence, received_level_db,
+        snr_db, clipped)``, or status 'failed' with the error of an unreadable file.
+    """
+    t0 = time.perf_counter()
+    from contextlib import nullcontext
+
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=threads) if threads is not None else nullcontext():
+        return _score_file(model, path, name, chain, channel, threshold, block_s, t0)
+
+
+def _score_file(
+    model: CallModel,
+    path: str | Path,
+    name: str,
+    chain: RecordingChain,
+    channel: int,
+    threshold: float,
+    block_s: float,
+    t0: float,
+) -> FileResult:
+    try:
+        settings = model.settings
+        names = model.descriptor_names
+        i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
+        i_act = names.index("contour_active_fraction")
+        proba, segment, band, n = [], [], [], 0
+        for table in describe_file(path, chain, settings, channel, block_s):
+            proba.append(model.estimator.predict_proba(table.values))
+            segment.append(table.segment_s)
+            v = table.values
+            active = v[:, i_act] > 0
+            lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
+            hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
+            band.append(np.column_stack([lo, hi]))
+            n += v.shape[0]
+        if n == 0:
+            return FileResult(name, "done", None, 0, [], time.perf_counter() - t0)
+        cands = pick_detections(
+            np.concatenate(proba), model.classes, np.concatenate(segment), np.concatenate(band), threshold
+        )
+        rows = []
+        with AudioReader(path, channel) as reader:
+            fs = reader.sample_rate_hz
+            for c in cands:
+                rl, snr, clipped = _levels(reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz)
+                rows.append(
+                    (
+                        round(c.start_s, 4),
+                        round(c.end_s, 4),
+                        round(c.low_hz, 2),
+                        round(c.high_hz, 2),
+                        c.label,
+                        round(c.confidence, 6),
+                        round(rl, 3),
+                        None if not np.isfinite(snr) else round(snr, 3),
+                        clipped,
+                    )
+                )
+        return FileResult(name, "done", None, n, rows, time.perf_counter() - t0)
+    except AudioReadError as exc:
+        return FileResult(name, "failed", exc.reason, 0, [], time.perf_counter() - t0)
+
+
+def _versions() -> dict[str, str]:
+    from importlib.metadata import PackageNotFoundError, version
+
+    out = {"python": platform.python_version()}
+    for pkg in ("callsieve", "numpy", "scipy", "scikit-learn", "soundfile", "skops"):
+        try:
+            out[pkg] = version(pkg)
+        except PackageNotFoundError:
+            out[pkg] = "unknown"
+    return out
+
+
+def _run_key(model: CallModel, deployment: str, threshold: float) -> str:
+    doc = {"model": model.content_sha256, "deployment": deployment, "threshold": threshold}
+    return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()
+
+
+def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: int, threshold: float) -> int:
+    key = _run_key(model, dep.name, threshold)
+    row = con.execute("SELECT run_id FROM runs WHERE run_key=?", (key,)).fetchone()
+    if row is not None:
+        con.execute("UPDATE runs SET status='running', finished_utc=NULL WHERE run_id=?", (row[0],))
+        return int(row[0])
+    params = {"threshold": threshold, "settings": model.settings.to_dict(), "manifest": str(dep.manifest_path)}
+    cur = con.execute(
+        "INSERT INTO runs (run_key, deployment_id, model_sha256, model_path, classes, target, threshold, "
+        "parameters, versions, host, started_utc, status) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'running')",
+        (
+            key,
+            dep_id,
+            model.content_sha256,
+            str(model_path),
+            json.dumps(model.classes),
+            model.target,
+            threshold,
+            json.dumps(params),
+            json.dumps(_versions()),
+            socket.gethostname(),
+            now_utc(),
+        ),
+    )
+    return int(cur.lastrowid)
+
+
+class _Progress:
+    def __init__(self, total_files: int, total_s: float, say: Callable[[str], None] | None) -> None:
+        self.total_files, self.total_s, self.say = total_files, total_s, say
+        self.files, self.done_s, self.detections, self.t0 = 0, 0.0, 0, time.perf_counter()
+        self.last = 0.0
+
+    def add(self, seconds: float, detections: int) -> None:
+        self.files += 1
+        self.done_s += seconds
+        self.detections += detections
+        now = time.perf_counter()
+        if self.say is None or (now - self.last < 1.0 and self.files < self.total_files):
+            return
+        self.last = now
+        elapsed = max(now - self.t0, 1e-9)
+        rate = self.done_s / 3600.0 / elapsed
+        left = (self.total_s - self.done_s) / 3600.0 / rate if rate > 0 else float("nan")
+        self.say(
+            f"{self.files}/{self.total_files} files, {self.done_s / 3600:.2f}/{self.total_s / 3600:.2f} h, "
+            f"{rate:.2f} h/s, {self.detections} detections, about {left:.0f} s left"
+        )
+
+
+def score_deployment(
+    model_path: str | Path,
+    manifest: str | Path,
+    db: str | Path,
+    threshold: float = DEFAULT_THRESHOLD,
+    jobs: int = 1,
+    scheduler: str | None = None,
+    block_s: float = 600.0,
+    progress: Callable[[str], None] | None = None,
+) -> dict[str, Any]:
+    """Score every file of a deployment into the store, carrying on an earlier run.
+
+    Parameters
+    ----------
+    model_path : model file from ``train``
+    manifest : deployment manifest
+    db : detection store (SQLite; made if missing)
+    threshold : float, probability floor below which nothing is stored (0..1)
+    jobs : int, worker processes on this machine (joblib)
+    scheduler : str, optional, address of a running Dask scheduler; workers compute,
+        this process writes
+    block_s : float, s, recorded time per block
+    progress : callable, optional
+
+    Returns
+    -------
+    dict
+        ``run_id``, ``files`` (scored now), ``skipped`` (already done), ``failed``
+        (list of {file, error}), ``detections`` (stored in the run), ``recorded_hours``,
+        ``seconds``, ``hours_per_second``.
+    """
+    if not 0.0 <= threshold < 1.0:
+        raise InputError(f"--threshold must be in 0..1, got {threshold:g}")
+    if jobs < 1:
+        raise InputError(f"--jobs must be >= 1, got {jobs}")
+    model_path = Path(model_path)
+    model = load_model(model_path)
+    dep = load_deployment(manifest)
+    if dep.files:
+        model.check_fits(dep.sample_rate_hz, str(manifest))
+    con = open_store(db)
+    say = progress or (lambda line: None)
+    with Transaction(con):
+        dep_id = upsert_deployment(con, dep.name, str(Path(manifest).resolve()), dep.sample_rate_hz, dep.channel)
+        file_ids = {
+            f.name: upsert_file(
+                con, dep_id, f.name, utc_iso(f.start_utc), f.duration_s, f.info.sample_rate_hz, f.size_bytes, f.mtime_ns
+            )
+            for f in dep.files
+        }
+        run_id = _open_run(con, model, model_path, dep, dep_id, threshold)
+    done = {r["file_id"]: r for r in con.execute("SELECT * FROM run_files WHERE run_id=?", (run_id,))}
+    todo = []
+    skipped = 0
+    for f in dep.files:
+        prev = done.get(file_ids[f.name])
+        if prev is not None and prev["status"] == "done":
+            if (prev["size_bytes"], prev["mtime_ns"]) == (f.size_bytes, f.mtime_ns):
+                skipped += 1
+                continue
+            say(f"{f.name} changed since it was scored (size or modification time); scoring it again")
+        todo.append(f)
+    # Files the manifest could not use are recorded as failed in this run.
+    failed = []
+    for fault in dep.faults:
+        start = parse_file_start(fault.name, dep.timestamp_format)
+        path = dep.audio_dir / fault.name
+        st = path.stat() if path.exists() else None
+        with Transaction(con):
+            fid = upsert_file(
+                con,
+                dep_id,
+                fault.name,
+                utc_iso(start) or "",
+                0.0,
+                None,
+                st.st_size if st else 0,
+                st.st_mtime_ns if st else 0,
+            )
+        replace_file_result(
+            con, run_id, fid, "failed", fault.error, st.st_size if st else 0, st.st_mtime_ns if st else 0, 0, []
+        )
+        failed.append({"file": fault.name, "error": fault.error})
+    records = {f.name: f for f in todo}
+    meter = _Progress(len(todo), sum(f.duration_s for f in todo), progress)
+    t0 = time.perf_counter()
+    stored = 0
+    for result in _results(model, str(model_path.resolve()), dep, todo, threshold, jobs, scheduler, block_s):
+        rec = records[result.name]
+        stored += replace_file_result(
+            con,
+            run_id,
+            file_ids[rec.name],
+            result.status,
+            result.error,
+            rec.size_bytes,
+            rec.mtime_ns,
+            result.windows,
+            result.rows,
+        )
+        if result.status == "failed":
+            failed.append({"file": rec.name, "error": result.error})
+        meter.add(rec.duration_s, len(result.rows))
+    seconds = time.perf_counter() - t0
+    scored = {r[0] for r in con.execute("SELECT file_id FROM run_files WHERE run_id=?", (run_id,))}
+    pending = len(set(file_ids.values()) - scored)
+    if pending == 0:
+        con.execute("UPDATE runs SET status='finished', finished_utc=? WHERE run_id=?", (now_utc(), run_id))
+    total = con.execute("SELECT COUNT(*) FROM detections WHERE run_id=? AND superseded=0", (run_id,)).fetchone()[0]
+    con.close()
+    hours = sum(f.duration_s for f in todo) / 3600.0
+    return {
+        "run_id": run_id,
+        "deployment": dep.name,
+        "files": len(todo),
+        "skipped": skipped,
+        "failed": failed,
+        "detections": int(total),
+        "detections_now": stored,
+        "recorded_hours": round(hours, 4),
+        "seconds": round(seconds, 2),
+        "hours_per_second": round(hours / seconds, 3) if seconds > 0 else None,
+    }
+
+
+def _results(
+    model: CallModel,
+    model_path: str,
+    dep: Deployment,
+    todo: list,
+    threshold: float,
+    jobs: int,
+    scheduler: str | None,
+    block_s: float,
+) -> Iterator[FileResult]:
+    args = [(f.path, f.name) for f in todo]
+    if not args:
+        return
+    if scheduler:
+        try:
+            from dask.distributed import Client, as_completed
+        except ImportError:
+            raise InputError("--scheduler needs dask.distributed: pip install 'dask[distributed]'") from None
+        try:
+            client = Client(scheduler, timeout="10s", set_as_default=False)
+        except OSError as exc:
+            raise InputError(f"--scheduler {scheduler}: cannot reach a Dask scheduler there ({exc})") from None
+        try:
+            shared = client.scatter(model, broadcast=True)
+            futures = [
+                client.submit(score_file, shared, p, n, dep.chain, dep.channel, threshold, block_s, 1, pure=False)
+                for p, n in args
+            ]
+            for fut in as_completed(futures):
+                yield fut.result()
+        finally:
+            client.close()
+        return
+    if jobs == 1:
+        for p, n in args:
+            yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s)
+        return
+    # Each worker gets its share of the cores for BLAS/OpenMP, so they do not oversubscribe.
+    import os
+
+    from joblib import Parallel, delayed
+
+    threads = max((os.cpu_count() or 1) // jobs, 1)
+    # Workers load the model file once each (by path and hash), not once per file.
+    yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(
+        delayed(_score_file_with_model_file)(
+            model_path, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads
+        )
+        for p, n in args
+    )
+
+
+@lru_cache(maxsize=2)
+def _cached_model(model_path: str, content_sha256: str) -> CallModel:
+    model = load_model(model_path)
+    if model.content_sha256 != content_sha256:
+        raise InputError(f"{model_path}: the model file changed while scoring; run the command again")
+    return model
+
+
+def _score_file_with_model_file(model_path: str, content_sha256: str, *args: Any) -> FileResult:
+    return score_file(_cached_model(model_path, content_sha256), *args)
+
+
+def stderr_progress(line: str) -> None:
+    """Progress lines on stderr."""
+    print(f"callsieve: {line}", file=sys.stderr, flush=True)

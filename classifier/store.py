@@ -1,0 +1,259 @@
+"""The detection store: SQLite in WAL mode, one file, written by one process.
+
+Schema (``SCHEMA_VERSION`` 1):
+
+- ``deployments``: one row per manifest name, with its sample rate and channel.
+- ``files``: every sound file of a deployment with its effort (UTC start, duration)
+  and what it was when last seen (size, modification time).
+- ``runs``: one scoring run per (model, deployment, parameters): model hash and path,
+  classes, threshold floor, descriptor settings, package versions, host, start and end,
+  status (``running`` or ``finished``).
+- ``run_files``: per run and file, ``done`` or ``failed`` with the error, the windows
+  scored and detections stored; a scoring run resumes from here.
+- ``detections``: candidate calls, in SPEC §4 terms; ``superseded`` marks detections of
+  a file that changed and was scored again, kept because someone verified them.
+- ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+from collections.abc import Iterable
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from .errors import InputError
+
+__all__ = ["SCHEMA_VERSION", "open_store", "now_utc"]
+
+SCHEMA_VERSION = 1
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS deployments (
+    deployment_id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,
+    manifest TEXT NOT NULL,
+    sample_rate_hz INTEGER NOT NULL,
+    channel INTEGER NOT NULL
+);
+CREATE TABLE IF NOT EXISTS files (
+    file_id INTEGER PRIMARY KEY,
+    deployment_id INTEGER NOT NULL REFERENCES deployments(deployment_id),
+    name TEXT NOT NULL,
+    start_utc TEXT NOT NULL,
+    duration_s REAL NOT NULL,
+    sample_rate_hz INTEGER,
+    size_bytes INTEGER NOT NULL,
+    mtime_ns INTEGER NOT NULL,
+    UNIQUE (deployment_id, name)
+);
+CREATE TABLE IF NOT EXISTS runs (
+    run_id INTEGER PRIMARY KEY,
+    run_key TEXT NOT NULL UNIQUE,
+    deployment_id INTEGER NOT NULL REFERENCES deployments(deployment_id),
+    model_sha256 TEXT NOT NULL,
+    model_path TEXT NOT NULL,
+    classes TEXT NOT NULL,
+    target TEXT,
+    threshold REAL NOT NULL,
+    parameters TEXT NOT NULL,
+    versions TEXT NOT NULL,
+    host TEXT NOT NULL,
+    started_utc TEXT NOT NULL,
+    finished_utc TEXT,
+    status TEXT NOT NULL CHECK (status IN ('running', 'finished'))
+);
+CREATE TABLE IF NOT EXISTS run_files (
+    run_id INTEGER NOT NULL REFERENCES runs(run_id),
+    file_id INTEGER NOT NULL REFERENCES files(file_id),
+    status TEXT NOT NULL CHECK (status IN ('done', 'failed')),
+    error TEXT,
+    size_bytes INTEGER NOT NULL,
+    mtime_ns INTEGER NOT NULL,
+    windows INTEGER NOT NULL DEFAULT 0,
+    detections INTEGER NOT NULL DEFAULT 0,
+    scored_utc TEXT NOT NULL,
+    PRIMARY KEY (run_id, file_id)
+);
+CREATE TABLE IF NOT EXISTS detections (
+    detection_id INTEGER PRIMARY KEY AUTOINCREMENT,
+    run_id INTEGER NOT NULL REFERENCES runs(run_id),
+    file_id INTEGER NOT NULL REFERENCES files(file_id),
+    start_s REAL NOT NULL,
+    end_s REAL NOT NULL,
+    low_hz REAL NOT NULL,
+    high_hz REAL NOT NULL,
+    label TEXT NOT NULL,
+    confidence REAL NOT NULL,
+    received_level_db REAL,
+    snr_db REAL,
+    clipped INTEGER NOT NULL,
+    superseded INTEGER NOT NULL DEFAULT 0
+);
+CREATE INDEX IF NOT EXISTS detections_by_run ON detections (run_id, file_id);
+CREATE INDEX IF NOT EXISTS detections_by_confidence ON detections (run_id, label, confidence);
+CREATE TABLE IF NOT EXISTS verdicts (
+    verdict_id INTEGER PRIMARY KEY,
+    detection_id INTEGER NOT NULL REFERENCES detections(detection_id),
+    reviewer TEXT NOT NULL,
+    verdict TEXT NOT NULL CHECK (verdict IN ('yes', 'no', 'unsure')),
+    note TEXT,
+    recorded_utc TEXT NOT NULL,
+    UNIQUE (detection_id, reviewer)
+);
+"""
+
+
+def now_utc() -> str:
+    """The current time, ISO 8601 UTC with a 'Z'."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
+    """Open (and, with ``create``, make) a detection store.
+
+    Raises
+    ------
+    InputError
+        When the file is not a callsieve store, is of a newer schema, or does not exist
+        and ``create`` is False.
+    """
+    path = Path(path)
+    if not create and not path.is_file():
+        raise InputError(f"{path}: no such detection store; make one with 'callsieve score'")
+    if path.exists() and path.is_dir():
+        raise InputError(f"{path}: is a folder; give a file name for the store")
+    try:
+        con = sqlite3.connect(path, timeout=30.0, isolation_level=None)
+        con.row_factory = sqlite3.Row
+        con.execute("PRAGMA journal_mode=WAL")
+        con.execute("PRAGMA foreign_keys=ON")
+        con.execute("PRAGMA synchronous=NORMAL")
+        tables = {r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if tables and "meta" not in tables:
+            raise InputError(f"{path}: an SQLite file, but not a callsieve store; choose another file")
+        con.executescript(_SCHEMA)
+        row = con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        if row is None:
+            con.execute("INSERT INTO meta (key, value) VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+        elif int(row[0]) > SCHEMA_VERSION:
+            raise InputError(f"{path}: store schema {row[0]} is newer than this callsieve ({SCHEMA_VERSION})")
+    except sqlite3.DatabaseError as exc:
+        raise InputError(f"{path}: not a readable SQLite store ({exc})") from None
+    return con
+
+
+class Transaction:
+    """``with Transaction(con):`` runs the block in one IMMEDIATE transaction."""
+
+    def __init__(self, con: sqlite3.Connection) -> None:
+        self.con = con
+
+    def __enter__(self) -> sqlite3.Connection:
+        self.con.execute("BEGIN IMMEDIATE")
+        return self.con
+
+    def __exit__(self, exc_type: Any, *rest: Any) -> None:
+        self.con.execute("ROLLBACK" if exc_type else "COMMIT")
+
+
+def upsert_deployment(con: sqlite3.Connection, name: str, manifest: str, sample_rate_hz: int, channel: int) -> int:
+    """Id of the deployment row, inserted or brought up to date."""
+    con.execute(
+        "INSERT INTO deployments (name, manifest, sample_rate_hz, channel) VALUES (?, ?, ?, ?) "
+        "ON CONFLICT(name) DO UPDATE SET manifest=excluded.manifest, sample_rate_hz=excluded.sample_rate_hz, "
+        "channel=excluded.channel",
+        (name, manifest, sample_rate_hz, channel),
+    )
+    return int(con.execute("SELECT deployment_id FROM deployments WHERE name=?", (name,)).fetchone()[0])
+
+
+def upsert_file(
+    con: sqlite3.Connection,
+    deployment_id: int,
+    name: str,
+    start_utc: str,
+    duration_s: float,
+    sample_rate_hz: int | None,
+    size_bytes: int,
+    mtime_ns: int,
+) -> int:
+    """Id of the file row, inserted or brought up to date."""
+    con.execute(
+        "INSERT INTO files (deployment_id, name, start_utc, duration_s, sample_rate_hz, size_bytes, mtime_ns) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT(deployment_id, name) DO UPDATE SET "
+        "start_utc=excluded.start_utc, duration_s=excluded.duration_s, sample_rate_hz=excluded.sample_rate_hz, "
+        "size_bytes=excluded.size_bytes, mtime_ns=excluded.mtime_ns",
+        (deployment_id, name, start_utc, duration_s, sample_rate_hz, size_bytes, mtime_ns),
+    )
+    return int(
+        con.execute("SELECT file_id FROM files WHERE deployment_id=? AND name=?", (deployment_id, name)).fetchone()[0]
+    )
+
+
+def replace_file_result(
+    con: sqlite3.Connection,
+    run_id: int,
+    file_id: int,
+    status: str,
+    error: str | None,
+    size_bytes: int,
+    mtime_ns: int,
+    windows: int,
+    rows: Iterable[tuple],
+) -> int:
+    """Store one file's outcome in one transaction; return the number of detections stored.
+
+    Earlier detections of this run and file go, except those with verdicts, which are
+    kept and marked superseded so that no reviewer's work is lost.
+    """
+    rows = list(rows)
+    with Transaction(con):
+        verified = "SELECT detection_id FROM verdicts"
+        con.execute(
+            f"UPDATE detections SET superseded=1 WHERE run_id=? AND file_id=? AND superseded=0 "
+            f"AND detection_id IN ({verified})",
+            (run_id, file_id),
+        )
+        con.execute(
+            f"DELETE FROM detections WHERE run_id=? AND file_id=? AND detection_id NOT IN ({verified})",
+            (run_id, file_id),
+        )
+        con.executemany(
+            "INSERT INTO detections (run_id, file_id, start_s, end_s, low_hz, high_hz, label, confidence, "
+            "received_level_db, snr_db, clipped) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            [(run_id, file_id, *r) for r in rows],
+        )
+        con.execute(
+            "INSERT INTO run_files (run_id, file_id, status, error, size_bytes, mtime_ns, windows, detections, "
+            "scored_utc) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT(run_id, file_id) DO UPDATE SET "
+            "status=excluded.status, error=excluded.error, size_bytes=excluded.size_bytes, "
+            "mtime_ns=excluded.mtime_ns, windows=excluded.windows, detections=excluded.detections, "
+            "scored_utc=excluded.scored_utc",
+            (run_id, file_id, status, error, size_bytes, mtime_ns, windows, len(rows), now_utc()),
+        )
+    return len(rows)
+
+
+def latest_run_id(con: sqlite3.Connection, run_id: int | None = None) -> int:
+    """``run_id`` if it exists, else the most recent run; InputError when there is none."""
+    if run_id is not None:
+        if con.execute("SELECT 1 FROM runs WHERE run_id=?", (run_id,)).fetchone() is None:
+            known = [r[0] for r in con.execute("SELECT run_id FROM runs ORDER BY run_id")]
+            raise InputError(f"--run {run_id}: no such scoring run in the store (runs: {known or 'none'})")
+        return run_id
+    row = con.execute("SELECT run_id FROM runs ORDER BY run_id DESC LIMIT 1").fetchone()
+    if row is None:
+        raise InputError("the store holds no scoring run yet; run 'callsieve score' first")
+    return int(row[0])
+
+
+def run_info(con: sqlite3.Connection, run_id: int) -> dict[str, Any]:
+    """A run's row as plain values (JSON columns decoded)."""
+    row = dict(con.execute("SELECT * FROM runs WHERE run_id=?", (run_id,)).fetchone())
+    for key in ("classes", "parameters", "versions"):
+        row[key] = json.loads(row[key])
+    return row
