@@ -388,10 +388,10 @@ def _results(
         except ImportError:
             raise InputError("--scheduler needs dask.distributed: pip install 'dask[distributed]'") from None
         try:
-            client = Client(scheduler, timeout="10s", set_as_default=False)
+            client = Client(scheduler, timeout="10s")
         except OSError as exc:
             raise InputError(f"--scheduler {scheduler}: cannot reach a Dask scheduler there ({exc})") from None
-        try:
+        with client:
             shared = client.scatter(model, broadcast=True)
             futures = [
                 client.submit(score_file, shared, p, n, dep.chain, dep.channel, threshold, block_s, 1, pure=False)
@@ -399,8 +399,6 @@ def _results(
             ]
             for fut in as_completed(futures):
                 yield fut.result()
-        finally:
-            client.close()
         return
     if jobs == 1:
         for p, n in args:

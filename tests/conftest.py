@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import csv
 from datetime import datetime, timedelta
 from pathlib import Path
 
 import numpy as np
 import pytest
 import soundfile as sf
+from callsieve.features.calibration import RecordingChain, samples_from_pressure
+from callsieve.features.synthesis import CallShape, call_waveform
 
 FLAT_CALIBRATION = """
 [calibration]
@@ -68,3 +71,68 @@ def duty_cycled(tmp_path: Path) -> tuple[Path, list[datetime]]:
     starts = [t0 + timedelta(minutes=5 * i) for i in range(4)]
     write_files(tmp_path, starts, 60.0)
     return write_manifest(tmp_path), starts
+
+
+FAST = """
+[model]
+kind = "gradient-boosting"
+[model.params]
+max_iter = 60
+[validation]
+group_by = "file"
+folds = 3
+"""
+
+
+@pytest.fixture(scope="session")
+def labelled(tmp_path_factory):
+    """Six 4-minute files of noise with up- and down-sweeps at known times, and their labels."""
+    folder = tmp_path_factory.mktemp("labelled")
+    fs = 2000
+    chain = RecordingChain.flat(2.5, -170.0, 40.0)
+    rng = np.random.default_rng(21)
+    rows = []
+    t0 = datetime(2032, 1, 5, 0, 0, 0)
+    (folder / "audio").mkdir()
+    for k in range(6):
+        n = fs * 240
+        t = np.arange(n) / fs
+        p = rng.normal(0.0, np.sqrt(10 ** (65 / 10) * fs / 2), n)
+        name = f"unit_{t0 + timedelta(minutes=10 * k):%Y%m%dT%H%M%SZ}.wav"
+        for start in np.arange(5.0, 230.0, 9.0) + rng.uniform(0, 2, 25):
+            up = rng.random() < 0.5
+            f0, f1 = (80.0, 160.0) if up else (160.0, 80.0)
+            shape = CallShape("sweep", f0 + rng.uniform(-5, 5), f1 + rng.uniform(-5, 5), rng.uniform(0.9, 1.3))
+            level = rng.uniform(100.0, 115.0)  # dB re 1 µPa: SNR from about -5 to +10 dB in band
+            p += call_waveform(shape, t - start, np.sqrt(2) * 10 ** (level / 20))
+            rows.append(
+                {
+                    "file": name,
+                    "start_s": round(start, 3),
+                    "end_s": round(start + shape.duration_s, 3),
+                    "label": "up" if up else "down",
+                    "low_hz": 70,
+                    "high_hz": 175,
+                }
+            )
+        sf.write(folder / "audio" / name, samples_from_pressure(p, fs, chain), fs, subtype="PCM_16")
+    manifest = write_manifest(folder, name="sweep-site")
+    labels = folder / "labels.csv"
+    with open(labels, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    config = folder / "fast.toml"
+    config.write_text(FAST)
+    return manifest, labels, config
+
+
+@pytest.fixture(scope="session")
+def sweep_model(labelled, tmp_path_factory):
+    """A model trained (without tracking) on the labelled sweep site."""
+    from callsieve.classifier.training import train
+
+    manifest, labels, config = labelled
+    path = tmp_path_factory.mktemp("sweep-model") / "model.skops"
+    train([manifest], [labels], path, config_path=config, track=False)
+    return path

@@ -138,10 +138,7 @@ def test_file_name_without_time_is_refused(duty_cycled, capsys):
 def test_table_whose_frequencies_do_not_increase_is_refused(duty_cycled, capsys):
     manifest, _ = duty_cycled
     (manifest.parent / "hyd.csv").write_text("frequency_hz,sensitivity_db\n100,-170\n50,-171\n")
-    cal = (
-        "[calibration]\nfull_scale_volts = 2.5\npreamp_gain_db = 40.0\n"
-        'hydrophone_sensitivity_csv = "hyd.csv"\n'
-    )
+    cal = '[calibration]\nfull_scale_volts = 2.5\npreamp_gain_db = 40.0\nhydrophone_sensitivity_csv = "hyd.csv"\n'
     write_manifest(manifest.parent, calibration=cal)
     code, err = _refused(capsys, ["calibrate", str(manifest)])
     assert code == 2 and "hyd.csv" in err and "row 3" in err and "frequency_hz" in err

@@ -54,12 +54,8 @@ def test_linear_sweep_slope(tmp_path):
     for t0 in (30.25, 60.25, 90.25):
         slope = _at(start, values, t0 - 0.5, "contour_slope_hz_per_s")
         assert slope == pytest.approx(100.0, rel=0.05)
-        assert _at(start, values, t0 - 0.5, "contour_min_hz") == pytest.approx(
-            100.0, abs=2 * SETTINGS.resolution_hz
-        )
-        assert _at(start, values, t0 - 0.5, "contour_max_hz") == pytest.approx(
-            200.0, abs=2 * SETTINGS.resolution_hz
-        )
+        assert _at(start, values, t0 - 0.5, "contour_min_hz") == pytest.approx(100.0, abs=2 * SETTINGS.resolution_hz)
+        assert _at(start, values, t0 - 0.5, "contour_max_hz") == pytest.approx(200.0, abs=2 * SETTINGS.resolution_hz)
 
 
 def test_tone_frequency_slope_and_level(tmp_path):
@@ -69,9 +65,7 @@ def test_tone_frequency_slope_and_level(tmp_path):
     fs = 2000
     rng = np.random.default_rng(1)
     t = np.arange(fs * 120) / fs
-    p = _noise(fs, 120, 50.0, rng) + np.where(
-        (t > 40) & (t < 80), 1e6 * np.sqrt(2) * np.sin(2 * np.pi * 173.0 * t), 0
-    )
+    p = _noise(fs, 120, 50.0, rng) + np.where((t > 40) & (t < 80), 1e6 * np.sqrt(2) * np.sin(2 * np.pi * 173.0 * t), 0)
     start, values, _ = _describe(tmp_path, p, fs, CHAIN)
     inside = (start > 42) & (start < 76)
     col = {n: values[inside, NAMES.index(n)] for n in NAMES}

@@ -114,9 +114,7 @@ def _digest(folder: Path) -> str:
     for p in sorted(folder.rglob("*")):
         if p.is_file():
             h.update(p.relative_to(folder).as_posix().encode())
-            h.update(
-                p.read_bytes() if p.suffix != ".json" else p.read_text().replace(str(folder), "").encode()
-            )
+            h.update(p.read_bytes() if p.suffix != ".json" else p.read_text().replace(str(folder), "").encode())
     return h.hexdigest()
 
 
