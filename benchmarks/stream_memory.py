@@ -41,8 +41,7 @@ def measure(path: str) -> None:
         # Frames that start in the core and whose window the block holds: each once.
         frames = grid.frames_starting_in(block.core_start, block.core_stop, info.samplerate)
         frames = frames[
-            grid.frame_start_samples(frames, info.samplerate) + context
-            <= block.first_sample + block.samples.size
+            grid.frame_start_samples(frames, info.samplerate) + context <= block.first_sample + block.samples.size
         ]
         spec = psd_spectrogram(block.samples, info.samplerate, grid, chain, block.first_sample, frames)
         n_frames += spec.psd_db.shape[1]

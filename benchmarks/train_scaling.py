@@ -59,14 +59,10 @@ def measure(cache: str, size: int, kind: str) -> None:
     X = data["X"][idx] + rng.normal(0, 0.01, (size, data["X"].shape[1])) * data["X"].std(axis=0)
     cfg = TrainingConfig(kind=kind)
     t0 = time.perf_counter()
-    _estimator(cfg).fit(
-        X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx]
-    )
+    _estimator(cfg).fit(X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx])
     seconds = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(
-        json.dumps({"kind": kind, "windows": size, "seconds": round(seconds, 1), "peak_rss_mb": round(peak)})
-    )
+    print(json.dumps({"kind": kind, "windows": size, "seconds": round(seconds, 1), "peak_rss_mb": round(peak)}))
 
 
 def main() -> None:

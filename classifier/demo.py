@@ -92,6 +92,28 @@ def run_demo(
     )
     summary["training"] = report
     summary["seconds"]["training"] = round(time.perf_counter() - t2, 1)
+
+    # Screen the survey site with it, then export the detection table.
+    t3 = time.perf_counter()
+    from .export import export_detections
+    from .scoring import score_deployment
+
+    db = out / "detections.db"
+    say(f"demo: scoring {summary['survey_manifest']} into {db}")
+    scored = score_deployment(report["model"], summary["survey_manifest"], db, jobs=2)
+    exported = export_detections(db, out / "detections.csv")
+    import sqlite3
+
+    con = sqlite3.connect(db)
+    by_label = dict(
+        con.execute(
+            "SELECT label, COUNT(*) FROM detections WHERE run_id=? AND confidence>=0.5 AND superseded=0 GROUP BY label",
+            (scored["run_id"],),
+        ).fetchall()
+    )
+    con.close()
+    summary["scoring"] = scored | {"export": exported["out"], "at_0.5": by_label}
+    summary["seconds"]["scoring"] = round(time.perf_counter() - t3, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
 
@@ -146,6 +168,16 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
                 f"  experiment run {tr['run']['run_id']}; browse with: "
                 f"mlflow ui --backend-store-uri {tr['run']['tracking_uri']}"
             )
+    if "scoring" in summary:
+        sc = summary["scoring"]
+        lines += ["", "Scoring the survey site"]
+        lines.append(
+            f"  run {sc['run_id']}: {sc['files']} files, {sc['recorded_hours']:.2f} h in {sc['seconds']:.1f} s "
+            f"({sc['hours_per_second']} h of audio per second); {sc['detections']} detections stored "
+            "(confidence >= 0.1)"
+        )
+        lines.append("  at confidence >= 0.5: " + ", ".join(f"{k} {v}" for k, v in sorted(sc["at_0.5"].items())))
+        lines.append(f"  detection table {sc['export']}")
     lines += [
         "",
         "Files",

@@ -83,12 +83,14 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
                 random_state=self.random_state,
             )
         if self.kind == "random-forest":
+            # All cores for fitting; prediction is set back to one (see fit).
             return RandomForestClassifier(
                 **params,
                 class_weight="balanced_subsample" if balanced else None,
-                n_jobs=1,
+                n_jobs=-1,
                 random_state=self.random_state,
             )
+
         raise ValueError(f"unknown model kind {self.kind!r}")
 
     def _splits(self, X: np.ndarray, y: np.ndarray, groups: np.ndarray | None) -> list:
@@ -168,6 +170,9 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             cal = self._fit_calibrators(raw[others], y[others], weight[others])
             self.oof_proba_[test] = self._calibrate(raw[test], cal)
         self.estimator_ = clone(self._base()).fit(X, y)
+        if "n_jobs" in self.estimator_.get_params():
+            # Scoring runs in parallel over files; a forest's own threads would oversubscribe.
+            self.estimator_.set_params(n_jobs=1)
         self.n_features_in_ = X.shape[1]
         return self
 

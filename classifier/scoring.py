@@ -31,6 +31,7 @@ from .calibrate import utc_iso
 from .deployment import Deployment, load_deployment, parse_file_start
 from .detections import pick_detections
 from .errors import InputError
+from .labels import BACKGROUND
 from .model import CallModel, load_model
 from .store import (
     Transaction,
@@ -44,6 +45,9 @@ from .store import (
 __all__ = ["FileResult", "score_file", "score_deployment", "DEFAULT_THRESHOLD"]
 
 DEFAULT_THRESHOLD = 0.1
+# The gate before the model: windows with no frame of trace above the noise floor and an
+# in-band SNR below this (dB) are background without asking the model.
+GATE_SNR_DB = -3.0
 # Seconds of audio on each side of a detection from which its noise level is taken.
 _NOISE_CONTEXT_S = 10.0
 
@@ -96,6 +100,7 @@ def score_file(
     threshold: float,
     block_s: float = 600.0,
     threads: int | None = None,
+    gate: bool = True,
 ) -> FileResult:
     """Detections of one file: describe, predict, pick peaks, measure levels.
 
@@ -108,6 +113,7 @@ def score_file(
     threshold : float, probability floor below which nothing is kept
     block_s : float, s, recorded time per block (results do not depend on it)
     threads : int, optional, BLAS/OpenMP threads in this process (for parallel workers)
+    gate : bool, skip the model for windows that show nothing in band (see GATE_SNR_DB)
 
     Returns
     -------
@@ -121,7 +127,7 @@ def score_file(
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=threads) if threads is not None else nullcontext():
-        return _score_file(model, path, name, chain, channel, threshold, block_s, t0)
+        return _score_file(model, path, name, chain, channel, threshold, block_s, t0, gate)
 
 
 def _score_file(
@@ -133,6 +139,7 @@ def _score_file(
     threshold: float,
     block_s: float,
     t0: float,
+    gate: bool = True,
 ) -> FileResult:
     try:
         settings = model.settings
@@ -140,8 +147,19 @@ def _score_file(
         i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
         i_act = names.index("contour_active_fraction")
         proba, segment, band, n = [], [], [], 0
+        i_snr = names.index("snr_db")
+        background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
         for table in describe_file(path, chain, settings, channel, block_s):
-            proba.append(model.estimator.predict_proba(table.values))
+            if gate and background is not None:
+                # Windows with no trace above the floor and no in-band excess skip the model.
+                keep = (table.values[:, i_act] > 0) | (table.values[:, i_snr] > GATE_SNR_DB)
+                p = np.zeros((table.values.shape[0], len(model.classes)))
+                p[:, background] = 1.0
+                if keep.any():
+                    p[keep] = model.estimator.predict_proba(table.values[keep])
+                proba.append(p)
+            else:
+                proba.append(model.estimator.predict_proba(table.values))
             segment.append(table.segment_s)
             v = table.values
             active = v[:, i_act] > 0

@@ -94,9 +94,7 @@ class RecordingChain:
     preamp_gain: ResponseCurve
 
     def __post_init__(self) -> None:
-        object.__setattr__(
-            self, "full_scale_volts", check_positive("full_scale_volts", self.full_scale_volts)
-        )
+        object.__setattr__(self, "full_scale_volts", check_positive("full_scale_volts", self.full_scale_volts))
 
     @classmethod
     def flat(cls, full_scale_volts: float, sensitivity_db: float, gain_db: float = 0.0) -> RecordingChain:
@@ -175,9 +173,7 @@ def pressure_from_samples(samples: np.ndarray, sample_rate_hz: float, chain: Rec
     return signal.oaconvolve(x.astype(np.float64), fir, mode="same").astype(dtype, copy=False)
 
 
-def samples_from_pressure(
-    pressure_upa: np.ndarray, sample_rate_hz: float, chain: RecordingChain
-) -> np.ndarray:
+def samples_from_pressure(pressure_upa: np.ndarray, sample_rate_hz: float, chain: RecordingChain) -> np.ndarray:
     """Sample values (full scale ±1.0, unclipped) that the chain produces from pressure in µPa.
 
     The forward direction of :func:`pressure_from_samples`, used to write synthetic
@@ -190,9 +186,7 @@ def samples_from_pressure(
     return signal.oaconvolve(p, fir, mode="same")
 
 
-def band_pressure_fir(
-    chain: RecordingChain, sample_rate_hz: float, low_hz: float, high_hz: float
-) -> np.ndarray:
+def band_pressure_fir(chain: RecordingChain, sample_rate_hz: float, low_hz: float, high_hz: float) -> np.ndarray:
     """Linear-phase FIR from sample values to band-limited pressure in µPa.
 
     The gain is the chain's µPa per unit inside [low_hz, high_hz] and falls to zero

@@ -78,9 +78,7 @@ class DescriptorSettings:
         for name in ("window_hop_s", "noise_step_s"):
             ratio = getattr(self, name) / self.frame_hop_s
             if abs(ratio - round(ratio)) > 1e-6 or round(ratio) < 1:
-                raise ParameterError(
-                    f"{name} must be a whole multiple of frame_hop_s ({self.frame_hop_s:g} s)"
-                )
+                raise ParameterError(f"{name} must be a whole multiple of frame_hop_s ({self.frame_hop_s:g} s)")
         if self.window_s < 1.0 / self.resolution_hz + 2 * self.frame_hop_s:
             raise ParameterError("window_s must hold at least three spectrogram frames")
         if not 0 < self.contour_false_alarm < 1:
@@ -115,8 +113,8 @@ class DescriptorSettings:
 
     @property
     def noise_stride(self) -> int:
-        """Subsampling of frames inside the noise span (about 4 frames per second)."""
-        return max(int(round(0.25 / self.frame_hop_s)), 1)
+        """Subsampling of frames inside the noise span (about 2 frames per second)."""
+        return max(int(round(0.5 / self.frame_hop_s)), 1)
 
     def to_dict(self) -> dict:
         """Plain values, for model files and experiment records."""
@@ -380,9 +378,7 @@ def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:
     return max(3.0 * df, (settings.high_hz - settings.low_hz) * settings.frame_hop_s)
 
 
-def _main_segment(
-    trace: np.ndarray, active: np.ndarray, excess: np.ndarray, max_jump_hz: float
-) -> np.ndarray:
+def _main_segment(trace: np.ndarray, active: np.ndarray, excess: np.ndarray, max_jump_hz: float) -> np.ndarray:
     """Frames of the run that holds each window's strongest frame.
 
     A run is a stretch of consecutive active frames whose trace moves by at most

@@ -13,7 +13,6 @@ from pathlib import Path
 
 import numpy as np
 from scipy import signal
-from scipy.ndimage import maximum_filter1d, minimum_filter1d
 
 from .calibration import RecordingChain, band_pressure_fir
 from .descriptors import DescriptorSettings, describe_windows
@@ -174,25 +173,49 @@ def _describe(
         pressure = signal.oaconvolve(analysed.astype(np.float64), fir, mode="same")
         p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
         clipped = _window_clipped(raw, q * w_start - raw0, int(round(settings.window_s * fs)))
-        values, segment = describe_windows(
-            spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p
-        )
+        values, segment = describe_windows(spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p)
         start_s = w_start / fs_a
-        yield WindowTable(
-            k, start_s, start_s + window_len_a / fs_a, values, clipped, start_s[:, None] + segment
-        )
+        yield WindowTable(k, start_s, start_s + window_len_a / fs_a, values, clipped, start_s[:, None] + segment)
+
+
+def _chunk_extremes(x: np.ndarray, bounds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Max and min of x over consecutive chunks [bounds[i], bounds[i+1])."""
+    x = x[: bounds[-1]]
+    return np.maximum.reduceat(x, bounds[:-1]), np.minimum.reduceat(x, bounds[:-1])
 
 
 def _window_peak_to_peak(pressure: np.ndarray, offsets: np.ndarray, length: int) -> np.ndarray:
-    """Peak-to-peak level (dB re 1 µPa) of windows [offset, offset + length) of ``pressure``."""
-    # A filter of size L at index i covers [i - L//2, i - L//2 + L).
-    centre = offsets + length // 2
-    hi = maximum_filter1d(pressure, length, mode="nearest")[centre]
-    lo = minimum_filter1d(pressure, length, mode="nearest")[centre]
+    """Peak-to-peak level (dB re 1 µPa) of windows [offset, offset + length) of ``pressure``.
+
+    Windows overlap and start on a regular grid; extremes are taken once per stretch
+    between consecutive window edges, then combined per window.
+    """
+    edges = np.unique(np.concatenate([offsets, offsets + length]))
+    hi_c, lo_c = _chunk_extremes(pressure, edges)
+    first = np.searchsorted(edges, offsets)
+    last = np.searchsorted(edges, offsets + length)
+    # Windows span a fixed number of chunks only when hop divides the length; use a
+    # sliding reduce over chunk indices with each window's own span.
+    span = last - first
+    width = int(span.max())
+    idx = first[:, None] + np.arange(width)[None, :]
+    valid = idx < last[:, None]
+    idx = np.minimum(idx, hi_c.size - 1)
+    hi = np.where(valid, hi_c[idx], -np.inf).max(axis=1)
+    lo = np.where(valid, lo_c[idx], np.inf).min(axis=1)
     return power_db((hi - lo) ** 2)
 
 
 def _window_clipped(raw: np.ndarray, offsets: np.ndarray, length: int) -> np.ndarray:
     """Whether a sample of each window [offset, offset + length) reached full scale."""
-    centre = np.clip(offsets + length // 2, 0, raw.size - 1)
-    return maximum_filter1d(np.abs(raw), length, mode="nearest")[centre] >= CLIP_THRESHOLD
+    offsets = np.clip(offsets, 0, raw.size - 1)
+    ends = np.clip(offsets + length, 1, raw.size)
+    edges = np.unique(np.concatenate([offsets, ends]))
+    peak = np.maximum.reduceat(np.abs(raw[: edges[-1]]), edges[:-1])
+    first = np.searchsorted(edges, offsets)
+    last = np.searchsorted(edges, ends)
+    width = int(max((last - first).max(), 1))
+    idx = first[:, None] + np.arange(width)[None, :]
+    valid = idx < last[:, None]
+    idx = np.minimum(idx, peak.size - 1)
+    return np.where(valid, peak[idx], 0.0).max(axis=1) >= CLIP_THRESHOLD

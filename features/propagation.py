@@ -91,9 +91,7 @@ def francois_garrison_absorption_db_per_km(
     return a1 * f1 * f_sq / (f1 * f1 + f_sq) + a2 * p2 * f2 * f_sq / (f2 * f2 + f_sq) + a3 * p3 * f_sq
 
 
-def ainslie_mccolm_absorption_db_per_km(
-    frequency_hz: np.ndarray | float, water: Seawater = Seawater()
-) -> np.ndarray:
+def ainslie_mccolm_absorption_db_per_km(frequency_hz: np.ndarray | float, water: Seawater = Seawater()) -> np.ndarray:
     """Seawater absorption after Ainslie & McColm (1998), dB/km (within ~10 % of F&G).
 
     Parameters
@@ -129,9 +127,7 @@ def absorption_db_per_km(
     try:
         return _ABSORPTION[model](frequency_hz, water)
     except KeyError:
-        raise ParameterError(
-            f"absorption model must be one of {sorted(_ABSORPTION)}, got {model!r}"
-        ) from None
+        raise ParameterError(f"absorption model must be one of {sorted(_ABSORPTION)}, got {model!r}") from None
 
 
 def transmission_loss_db(

@@ -45,9 +45,7 @@ class SpectrogramGrid:
         check_positive("resolution_hz", self.resolution_hz)
         check_positive("hop_s", self.hop_s)
         if not (0.0 <= self.low_hz < self.high_hz):
-            raise ParameterError(
-                f"the band needs 0 <= low_hz < high_hz, got {self.low_hz:g} .. {self.high_hz:g} Hz"
-            )
+            raise ParameterError(f"the band needs 0 <= low_hz < high_hz, got {self.low_hz:g} .. {self.high_hz:g} Hz")
 
     @property
     def window_s(self) -> float:

@@ -89,9 +89,7 @@ def audio_info(path: str | Path) -> AudioInfo:
         # libsndfile quietly shortens a WAV whose data chunk ends early; a recorder
         # file cut short is a fault the analyst must hear about.
         if declared is not None and declared > info.frames:
-            raise AudioReadError(
-                path, f"truncated: header says {declared} samples, data ends at {info.frames}"
-            )
+            raise AudioReadError(path, f"truncated: header says {declared} samples, data ends at {info.frames}")
     return AudioInfo(int(info.samplerate), int(info.frames), int(info.channels), info.format, info.subtype)
 
 
@@ -149,9 +147,7 @@ def read_blocks(
                 try:
                     new = handle.read(want_stop - position, dtype="float32", always_2d=True)
                 except (RuntimeError, sf.LibsndfileError) as exc:
-                    raise AudioReadError(
-                        path, f"read failed near sample {position} ({_reason(exc)})"
-                    ) from None
+                    raise AudioReadError(path, f"read failed near sample {position} ({_reason(exc)})") from None
                 got = new.shape[0]
                 if got < want_stop - position:
                     raise AudioReadError(
@@ -193,9 +189,7 @@ class AudioReader:
             raise AudioReadError(path, f"cannot open as sound ({_reason(exc)})") from None
         if not 0 <= channel < self._handle.channels:
             self._handle.close()
-            raise AudioReadError(
-                path, f"has {self._handle.channels} channel(s); channel {channel} does not exist"
-            )
+            raise AudioReadError(path, f"has {self._handle.channels} channel(s); channel {channel} does not exist")
         self.frames = int(self._handle.frames)
         self.sample_rate_hz = int(self._handle.samplerate)
         self._position = 0
@@ -224,9 +218,7 @@ class AudioReader:
         got = data.shape[0]
         self._position = start + got
         if got < stop - start:
-            raise AudioReadError(
-                self.path, f"truncated: header says {self.frames} samples, data ends at {start + got}"
-            )
+            raise AudioReadError(self.path, f"truncated: header says {self.frames} samples, data ends at {start + got}")
         return np.ascontiguousarray(data[:, self.channel])
 
 

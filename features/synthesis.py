@@ -45,9 +45,7 @@ def wind_psd_db(frequency_hz: np.ndarray, wind_speed_mps: float) -> np.ndarray:
     return 50.0 + 7.5 * np.sqrt(wind_speed_mps) + 20.0 * np.log10(f) - 40.0 * np.log10(f + 0.4)
 
 
-def ambient_noise_psd_db(
-    frequency_hz: np.ndarray, shipping: float = 0.5, wind_speed_mps: float = 5.0
-) -> np.ndarray:
+def ambient_noise_psd_db(frequency_hz: np.ndarray, shipping: float = 0.5, wind_speed_mps: float = 5.0) -> np.ndarray:
     """Deep-water ambient noise PSD, dB re 1 µPa²/Hz: shipping, wind, turbulence, thermal.
 
     The four terms of the empirical Wenz-curve fit (REFERENCES §8) added in power.
@@ -72,9 +70,7 @@ def ambient_noise_psd_db(
     return 10.0 * np.log10(np.sum(10.0 ** (terms / 10.0), axis=0))
 
 
-def coloured_noise(
-    n_samples: int, sample_rate_hz: float, psd_db: np.ndarray, rng: np.random.Generator
-) -> np.ndarray:
+def coloured_noise(n_samples: int, sample_rate_hz: float, psd_db: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Gaussian noise whose one-sided PSD is ``psd_db`` (dB re 1 µPa²/Hz) on the rfft grid.
 
     Parameters
@@ -154,9 +150,7 @@ def _phase(shape: CallShape, t: np.ndarray) -> np.ndarray:
     return 2 * np.pi * (centre * t - shape.wobble_hz / (2 * np.pi * r) * (np.cos(2 * np.pi * r * t) - 1.0))
 
 
-def call_waveform(
-    shape: CallShape, t_s: np.ndarray, amplitude_upa: float = 1.0, taper: float = 0.3
-) -> np.ndarray:
+def call_waveform(shape: CallShape, t_s: np.ndarray, amplitude_upa: float = 1.0, taper: float = 0.3) -> np.ndarray:
     """Pressure of one call at times ``t_s`` (s from its start), µPa; zero outside it.
 
     A Tukey envelope (``taper`` = fraction of the duration in the cosine ramps) keeps

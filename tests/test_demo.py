@@ -21,6 +21,14 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     # The training step: a model file, and the experiment in the demo's own MLflow store.
     assert "Training" in page and "average precision" in page
     assert (out / "models" / "demo-model.skops").exists() and (out / "mlflow.db").exists()
+    # The scoring step: the survey site screened into a store, and its detection table.
+    assert "Scoring the survey site" in page
+    import csv
+
+    from callsieve.classifier.export import DETECTION_COLUMNS
+
+    rows = list(csv.DictReader(open(out / "detections.csv")))
+    assert list(rows[0]) == DETECTION_COLUMNS and {r["deployment"] for r in rows} == {"south-slope"}
 
 
 def test_demo_refuses_a_foreign_folder(tmp_path, capsys):
