@@ -115,7 +115,16 @@ def log_training_run(
     logging.getLogger("mlflow").setLevel(logging.WARNING)
     if tracking_uri:
         mlflow.set_tracking_uri(tracking_uri)
-    mlflow.set_experiment(experiment or DEFAULT_EXPERIMENT)
+    name = experiment or DEFAULT_EXPERIMENT
+    if mlflow.get_experiment_by_name(name) is None:
+        # A store in a named SQLite file keeps its artifacts beside it, not in the
+        # working folder (MLflow's own default, kept for its own default store).
+        uri = mlflow.get_tracking_uri()
+        location = None
+        if tracking_uri and uri.startswith("sqlite:///"):
+            location = (Path(uri[len("sqlite:///"):]).resolve().parent / "mlartifacts").as_uri()
+        mlflow.create_experiment(name, artifact_location=location)
+    mlflow.set_experiment(name)
     model: CallModel = result.model
     cfg = result.config.to_dict()
     params = {f"model.{k}": v for k, v in cfg["params"].items()}
