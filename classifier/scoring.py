@@ -48,8 +48,6 @@ DEFAULT_THRESHOLD = 0.1
 # The gate before the model: windows with no frame of trace above the noise floor and an
 # in-band SNR below this (dB) are background without asking the model.
 GATE_SNR_DB = -3.0
-# Seconds of audio on each side of a detection from which its noise level is taken.
-_NOISE_CONTEXT_S = 10.0
 
 
 @dataclass
@@ -65,30 +63,36 @@ class FileResult:
 
 
 def _levels(
-    reader: AudioReader, fs: int, chain: RecordingChain, start_s: float, end_s: float, low_hz: float, high_hz: float
+    reader: AudioReader,
+    fs: int,
+    chain: RecordingChain,
+    start_s: float,
+    end_s: float,
+    low_hz: float,
+    high_hz: float,
+    noise_psd: np.ndarray,
+    frequency_hz: np.ndarray,
 ) -> tuple[float, float, int]:
-    """Received level (dB re 1 µPa), SNR (dB) and clip flag of one detection."""
-    ctx = int(_NOISE_CONTEXT_S * fs)
+    """Received level (dB re 1 µPa), SNR (dB) and clip flag of one detection.
+
+    The received level is the band-limited rms SPL of the calibrated waveform over the
+    detection; the noise is the noise floor's power in the same band at the peak window
+    (``noise_psd``, µPa²/Hz, on ``frequency_hz``), so SNR = (signal power) / (noise power).
+    """
     taps = chain.fir_length(fs)
     a, b = int(round(start_s * fs)), max(int(round(end_s * fs)), int(round(start_s * fs)) + 2)
-    r0, r1 = max(a - ctx - taps, 0), min(b + ctx + taps, reader.frames)
+    r0, r1 = max(a - taps, 0), min(b + taps, reader.frames)
     raw = reader.read(r0, r1)
     p = pressure_from_samples(raw.astype(np.float64), fs, chain)
-    seg = p[a - r0 : b - r0]
-    rl = float(band_spl_db(seg, fs, low_hz, high_hz))
+    rl = float(band_spl_db(p[a - r0 : b - r0], fs, low_hz, high_hz))
     clipped = int(np.any(np.abs(raw[a - r0 : b - r0]) >= CLIP_THRESHOLD))
-    # Noise: median band power of 1-s pieces around the detection, clear of it by 0.5 s.
-    piece = fs
-    starts = np.arange(max(a - ctx, 0), max(b + ctx - piece, 0) + 1, piece)
-    starts = starts[((starts + piece) <= a - fs // 2) | (starts >= b + fs // 2)]
-    starts = starts[(starts >= r0) & (starts + piece <= r1)]
-    if starts.size == 0:
+    df = float(frequency_hz[1] - frequency_hz[0])
+    inside = (frequency_hz >= low_hz - df / 2) & (frequency_hz <= high_hz + df / 2)
+    noise = float(np.sum(noise_psd[inside]) * df)
+    if not noise > 0:
         return rl, float("nan"), clipped
-    pieces = np.stack([p[s - r0 : s - r0 + piece] for s in starts])
-    noise = float(np.median(10.0 ** (band_spl_db(pieces, fs, low_hz, high_hz) / 10.0)))
-    signal_power = 10.0 ** (rl / 10.0) - noise
-    snr = 10.0 * np.log10(max(signal_power, 1e-3 * noise) / noise) if noise > 0 else float("nan")
-    return rl, float(snr), clipped
+    excess = 10.0 ** (rl / 10.0) - noise
+    return rl, float(10.0 * np.log10(max(excess, 1e-3 * noise) / noise)), clipped
 
 
 def score_file(
@@ -146,7 +150,7 @@ def _score_file(
         names = model.descriptor_names
         i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
         i_act = names.index("contour_active_fraction")
-        proba, segment, band, n = [], [], [], 0
+        proba, segment, band, noise_psd, n = [], [], [], [], 0
         i_snr = names.index("snr_db")
         background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
         for table in describe_file(path, chain, settings, channel, block_s):
@@ -161,6 +165,8 @@ def _score_file(
             else:
                 proba.append(model.estimator.predict_proba(table.values))
             segment.append(table.segment_s)
+            noise_psd.append(table.noise_psd)
+            frequency_hz = table.frequency_hz
             v = table.values
             active = v[:, i_act] > 0
             lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
@@ -173,10 +179,13 @@ def _score_file(
             np.concatenate(proba), model.classes, np.concatenate(segment), np.concatenate(band), threshold
         )
         rows = []
+        noise_psd = np.concatenate(noise_psd)
         with AudioReader(path, channel) as reader:
             fs = reader.sample_rate_hz
             for c in cands:
-                rl, snr, clipped = _levels(reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz)
+                rl, snr, clipped = _levels(
+                    reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz, noise_psd[c.window], frequency_hz
+                )
                 rows.append(
                     (
                         round(c.start_s, 4),

@@ -122,7 +122,7 @@ def log_training_run(
         uri = mlflow.get_tracking_uri()
         location = None
         if tracking_uri and uri.startswith("sqlite:///"):
-            location = (Path(uri[len("sqlite:///"):]).resolve().parent / "mlartifacts").as_uri()
+            location = (Path(uri[len("sqlite:///") :]).resolve().parent / "mlartifacts").as_uri()
         mlflow.create_experiment(name, artifact_location=location)
     mlflow.set_experiment(name)
     model: CallModel = result.model

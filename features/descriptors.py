@@ -204,7 +204,7 @@ def describe_windows(
     window_first_frame: np.ndarray,
     settings: DescriptorSettings,
     peak_to_peak_db: np.ndarray,
-) -> tuple[np.ndarray, np.ndarray]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Descriptors of analysis windows from PSD frames and the noise floor.
 
     Parameters
@@ -222,13 +222,15 @@ def describe_windows(
         :func:`descriptor_names`
     segment_s : np.ndarray [shape=(n_windows, 2)], s from each window's start: where its
         main trace starts and ends (the whole window where there is none)
+    noise_psd : np.ndarray [shape=(n_windows, n_freq)], float32, µPa²/Hz, the mean noise
+        floor over each window
     """
     n_w = settings.frames_per_window
     first = np.asarray(window_first_frame, dtype=np.int64)
     n_win = first.size
     names = descriptor_names(settings)
     if n_win == 0:
-        return np.empty((0, len(names)), dtype=np.float32), np.empty((0, 2))
+        return np.empty((0, len(names)), dtype=np.float32), np.empty((0, 2)), np.empty((0, len(frequency_hz)))
     f = np.asarray(frequency_hz, dtype=np.float64)
     df = float(f[1] - f[0])
     hop = settings.frame_hop_s
@@ -367,7 +369,7 @@ def describe_windows(
         np.array([0.0, settings.window_s]),
         np.column_stack([first_act * hop, last_act * hop + frame_s]),
     )
-    return np.concatenate([contour, energy], axis=1).astype(np.float32), segment
+    return np.concatenate([contour, energy], axis=1).astype(np.float32), segment, mean_noise.T.astype(np.float32)
 
 
 def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:

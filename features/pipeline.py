@@ -39,6 +39,8 @@ class WindowTable:
     clipped : np.ndarray [shape=(n,)], bool, a sample reached full scale in the window
     segment_s : np.ndarray [shape=(n, 2)], s from the file's start: start and end of
         each window's main trace (the window itself where it has none)
+    noise_psd : np.ndarray [shape=(n, n_freq)], float32, µPa²/Hz, mean noise floor per window
+    frequency_hz : np.ndarray [shape=(n_freq,)], Hz, the bins of ``noise_psd``
     """
 
     window_index: np.ndarray
@@ -47,6 +49,8 @@ class WindowTable:
     values: np.ndarray
     clipped: np.ndarray
     segment_s: np.ndarray
+    noise_psd: np.ndarray
+    frequency_hz: np.ndarray
 
 
 def _frame_total(n_samples: int, fs: float, settings: DescriptorSettings) -> int:
@@ -173,9 +177,20 @@ def _describe(
         pressure = signal.oaconvolve(analysed.astype(np.float64), fir, mode="same")
         p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
         clipped = _window_clipped(raw, q * w_start - raw0, int(round(settings.window_s * fs)))
-        values, segment = describe_windows(spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p)
+        values, segment, noise_psd = describe_windows(
+            spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p
+        )
         start_s = w_start / fs_a
-        yield WindowTable(k, start_s, start_s + window_len_a / fs_a, values, clipped, start_s[:, None] + segment)
+        yield WindowTable(
+            k,
+            start_s,
+            start_s + window_len_a / fs_a,
+            values,
+            clipped,
+            start_s[:, None] + segment,
+            noise_psd,
+            spec.frequency_hz,
+        )
 
 
 def _chunk_extremes(x: np.ndarray, bounds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
