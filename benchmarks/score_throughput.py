@@ -18,7 +18,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import time
@@ -27,6 +26,19 @@ from pathlib import Path
 import numpy as np
 
 ONE_CORE = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
+def peak_rss_mb() -> float:
+    """This process's peak resident memory (VmHWM), MB.
+
+    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
+    its parent's peak.
+    """
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
 
 
 def _run(args: list[str]) -> dict:
@@ -107,7 +119,7 @@ def score_job(manifest: str, model_path: str, db: str, jobs: int) -> None:
                 "seconds": time.perf_counter() - t0,
                 "hours": r["recorded_hours"],
                 "detections": r["detections"],
-                "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+                "peak_rss_mb": peak_rss_mb(),
             }
         )
     )

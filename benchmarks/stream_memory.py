@@ -7,7 +7,6 @@ Each measurement runs in a fresh process so that peak RSS belongs to that file a
 from __future__ import annotations
 
 import argparse
-import resource
 import subprocess
 import sys
 import time
@@ -15,6 +14,19 @@ from pathlib import Path
 
 import numpy as np
 import soundfile as sf
+
+
+def peak_rss_mb() -> float:
+    """This process's peak resident memory (VmHWM), MB.
+
+    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
+    its parent's peak.
+    """
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
 
 
 def write_long_file(path: Path, hours: float, rate: int) -> None:
@@ -46,7 +58,7 @@ def measure(path: str) -> None:
         spec = psd_spectrogram(block.samples, info.samplerate, grid, chain, block.first_sample, frames)
         n_frames += spec.psd_db.shape[1]
     elapsed = time.perf_counter() - t0
-    peak_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak_mb = peak_rss_mb()
     print(f"{info.duration / 3600:.1f} h  peak RSS {peak_mb:.0f} MB  {elapsed:.1f} s  frames {n_frames}")
 
 

@@ -13,13 +13,25 @@ from __future__ import annotations
 
 import argparse
 import json
-import resource
 import subprocess
 import sys
 import time
 from pathlib import Path
 
 import numpy as np
+
+
+def peak_rss_mb() -> float:
+    """This process's peak resident memory (VmHWM), MB.
+
+    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
+    its parent's peak.
+    """
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
 
 
 def prepare(folder: Path) -> Path:
@@ -61,7 +73,7 @@ def measure(cache: str, size: int, kind: str) -> None:
     t0 = time.perf_counter()
     _estimator(cfg).fit(X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx])
     seconds = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak = peak_rss_mb()
     print(json.dumps({"kind": kind, "windows": size, "seconds": round(seconds, 1), "peak_rss_mb": round(peak)}))
 
 
