@@ -7,7 +7,6 @@ The model file is a skops archive: loading it can only build objects of the type
 from __future__ import annotations
 
 import hashlib
-import io
 import json
 from pathlib import Path
 from typing import Any
@@ -364,9 +363,3 @@ def load_model(path: str | Path) -> CallModel:
     )
     model.content_sha256 = payload["content_sha256"]
     return model
-
-
-def estimator_bytes(model: CallModel) -> bytes:
-    """The estimator as skops bytes (for hashing and transport)."""
-    buf = io.BytesIO(sio.dumps(model.estimator))
-    return buf.getvalue()

@@ -216,6 +216,11 @@ def collect_examples(
     counts: dict[str, dict[str, int]] = {}
     n_described, seconds = 0, 0.0
     keep_classes = {target} if target else None
+    files_of = [{f.name: f for f in s.deployment.files} for s in sets]
+    wanted = [files_of[i][a.file] for i, s in enumerate(sets) for a in s.annotations]
+    unique = {(id(f)): f for f in wanted}
+    total_files, total_s = len(unique), sum(f.duration_s for f in unique.values())
+    done_files, t_start = 0, time.perf_counter()
     for lset in sets:
         dep = lset.deployment
         by_file: dict[str, list[Annotation]] = {}
@@ -247,7 +252,15 @@ def collect_examples(
             bg_X.append(values[bg])
             bg_g.append(group[bg])
             if progress:
-                progress(f"{dep.name}/{name}: {int(pos.sum())} labelled windows, {int(bg.sum())} background")
+                done_files += 1
+                elapsed = max(time.perf_counter() - t_start, 1e-9)
+                rate = seconds / 3600.0 / elapsed
+                left = (total_s - seconds) / 3600.0 / rate if rate > 0 else float("nan")
+                progress(
+                    f"{done_files}/{total_files} files, {seconds / 3600:.2f}/{total_s / 3600:.2f} h, "
+                    f"{rate:.2f} h/s, about {left:.0f} s left; {dep.name}/{name}: {int(pos.sum())} labelled "
+                    f"windows, {int(bg.sum())} background"
+                )
         X_pos = np.concatenate(pos_X) if pos_X else np.empty((0, len(names)), np.float32)
         y_pos = np.concatenate(pos_y) if pos_y else np.empty(0, object)
         g_pos = np.concatenate(pos_g) if pos_g else np.empty(0, object)
