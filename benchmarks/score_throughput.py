@@ -24,21 +24,9 @@ import time
 from pathlib import Path
 
 import numpy as np
+from _common import peak_rss_mb
 
 ONE_CORE = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
-
-
-def peak_rss_mb() -> float:
-    """This process's peak resident memory (VmHWM), MB.
-
-    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
-    its parent's peak.
-    """
-    with open("/proc/self/status") as fh:
-        for line in fh:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    return float("nan")
 
 
 def _run(args: list[str]) -> dict:

@@ -14,19 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import soundfile as sf
-
-
-def peak_rss_mb() -> float:
-    """This process's peak resident memory (VmHWM), MB.
-
-    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
-    its parent's peak.
-    """
-    with open("/proc/self/status") as fh:
-        for line in fh:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    return float("nan")
+from _common import peak_rss_mb
 
 
 def write_long_file(path: Path, hours: float, rate: int) -> None:

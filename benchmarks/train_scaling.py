@@ -19,19 +19,7 @@ import time
 from pathlib import Path
 
 import numpy as np
-
-
-def peak_rss_mb() -> float:
-    """This process's peak resident memory (VmHWM), MB.
-
-    Not getrusage: on Linux its maximum survives fork and exec, so a child would report
-    its parent's peak.
-    """
-    with open("/proc/self/status") as fh:
-        for line in fh:
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    return float("nan")
+from _common import peak_rss_mb
 
 
 def prepare(folder: Path) -> Path:
