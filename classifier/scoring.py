@@ -24,11 +24,11 @@ from typing import Any
 import numpy as np
 from callsieve.features.calibration import RecordingChain, pressure_from_samples
 from callsieve.features.levels import band_spl_db
-from callsieve.features.pipeline import CLIP_THRESHOLD, describe_file
-from callsieve.features.streaming import AudioReader, AudioReadError
+from callsieve.features.pipeline import CLIP_THRESHOLD, describe_stream
+from callsieve.features.streaming import AudioReader, AudioReadError, SegmentReader
 
 from .calibrate import utc_iso
-from .deployment import Deployment, load_deployment, parse_file_start
+from .deployment import GAP_TOLERANCE_S, Deployment, load_deployment, parse_file_start
 from .detections import pick_detections
 from .errors import InputError
 from .labels import BACKGROUND
@@ -63,7 +63,7 @@ class FileResult:
 
 
 def _levels(
-    reader: AudioReader,
+    reader: SegmentReader,
     fs: int,
     chain: RecordingChain,
     start_s: float,
@@ -81,7 +81,7 @@ def _levels(
     """
     taps = chain.fir_length(fs)
     a, b = int(round(start_s * fs)), max(int(round(end_s * fs)), int(round(start_s * fs)) + 2)
-    r0, r1 = max(a - taps, 0), min(b + taps, reader.frames)
+    r0, r1 = max(a - taps, reader.start), min(b + taps, reader.stop)
     raw = reader.read(r0, r1)
     p = pressure_from_samples(raw.astype(np.float64), fs, chain)
     rl = float(band_spl_db(p[a - r0 : b - r0], fs, low_hz, high_hz))
@@ -95,6 +95,13 @@ def _levels(
     return rl, float(10.0 * np.log10(max(excess, 1e-3 * noise) / noise)), clipped
 
 
+#: A neighbouring file of a continuous recording: its path and its number of samples.
+Neighbour = tuple[str, int]
+# Windows beyond the file's own on each side whose probabilities the peak-picking sees,
+# so a call across a file boundary is one peak, owned by the file its window starts in.
+_CONTEXT_WINDOWS = 8
+
+
 def score_file(
     model: CallModel,
     path: str | Path,
@@ -105,6 +112,9 @@ def score_file(
     block_s: float = 600.0,
     threads: int | None = None,
     gate: bool = True,
+    offset: int = 0,
+    before: Neighbour | None = None,
+    after: Neighbour | None = None,
 ) -> FileResult:
     """Detections of one file: describe, predict, pick peaks, measure levels.
 
@@ -118,12 +128,17 @@ def score_file(
     block_s : float, s, recorded time per block (results do not depend on it)
     threads : int, optional, BLAS/OpenMP threads in this process (for parallel workers)
     gate : bool, skip the model for windows that show nothing in band (see GATE_SNR_DB)
+    offset : int, samples, where the file starts in its continuous recording
+    before, after : (path, samples) of the neighbouring files of a continuous recording,
+        read for context so that windows, noise floor and peaks cross file boundaries
+        exactly as inside one file; None at a gap
 
     Returns
     -------
     FileResult
         Rows ``(start_s, end_s, low_hz, high_hz, label, confidence, received_level_db,
-        snr_db, clipped)``, or status 'failed' with the error of an unreadable file.
+        snr_db, clipped)`` in seconds from this file's start, or status 'failed' with
+        the error of an unreadable file.
     """
     t0 = time.perf_counter()
     from contextlib import nullcontext
@@ -131,12 +146,34 @@ def score_file(
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=threads) if threads is not None else nullcontext():
-        return _score_file(model, path, name, chain, channel, threshold, block_s, t0, gate)
+        try:
+            own = AudioReader(path, channel)
+            frames = own.frames
+            own.close()
+            parts = [(str(path), offset, frames)]
+            # A neighbour that cannot be opened is a gap, not a fault of this file.
+            if before is not None and _opens(before[0], channel):
+                parts.insert(0, (before[0], offset - before[1], before[1]))
+            if after is not None and _opens(after[0], channel):
+                parts.append((after[0], offset + frames, after[1]))
+            return _score_file(model, parts, offset, frames, name, chain, channel, threshold, block_s, t0, gate)
+        except AudioReadError as exc:
+            return FileResult(name, "failed", exc.reason, 0, [], time.perf_counter() - t0)
+
+
+def _opens(path: str, channel: int) -> bool:
+    try:
+        AudioReader(path, channel).close()
+        return True
+    except AudioReadError:
+        return False
 
 
 def _score_file(
     model: CallModel,
-    path: str | Path,
+    parts: list[tuple[str, int, int]],
+    offset: int,
+    frames: int,
     name: str,
     chain: RecordingChain,
     channel: int,
@@ -145,63 +182,69 @@ def _score_file(
     t0: float,
     gate: bool = True,
 ) -> FileResult:
-    try:
-        settings = model.settings
-        names = model.descriptor_names
-        i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
-        i_act = names.index("contour_active_fraction")
-        proba, segment, band, noise_psd, n = [], [], [], [], 0
-        i_snr = names.index("snr_db")
-        background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
-        for table in describe_file(path, chain, settings, channel, block_s):
+    settings = model.settings
+    names = model.descriptor_names
+    i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
+    i_act = names.index("contour_active_fraction")
+    i_snr = names.index("snr_db")
+    background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
+    proba, segment, band, noise_psd, starts = [], [], [], [], []
+    with SegmentReader(parts, channel) as reader:
+        fs = reader.sample_rate_hz
+        hop = settings.window_hop_s
+        k0 = int(np.floor(offset / fs / hop)) - _CONTEXT_WINDOWS
+        k1 = int(np.ceil((offset + frames) / fs / hop)) + _CONTEXT_WINDOWS
+        for table in describe_stream(reader, chain, settings, block_s, (k0, k1)):
+            v = table.values
             if gate and background is not None:
                 # Windows with no trace above the floor and no in-band excess skip the model.
-                keep = (table.values[:, i_act] > 0) | (table.values[:, i_snr] > GATE_SNR_DB)
-                p = np.zeros((table.values.shape[0], len(model.classes)))
+                keep = (v[:, i_act] > 0) | (v[:, i_snr] > GATE_SNR_DB)
+                p = np.zeros((v.shape[0], len(model.classes)))
                 p[:, background] = 1.0
                 if keep.any():
-                    p[keep] = model.estimator.predict_proba(table.values[keep])
+                    p[keep] = model.estimator.predict_proba(v[keep])
                 proba.append(p)
             else:
-                proba.append(model.estimator.predict_proba(table.values))
+                proba.append(model.estimator.predict_proba(v))
             segment.append(table.segment_s)
             noise_psd.append(table.noise_psd)
+            starts.append(table.start_s)
             frequency_hz = table.frequency_hz
-            v = table.values
             active = v[:, i_act] > 0
             lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
             hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
             band.append(np.column_stack([lo, hi]))
-            n += v.shape[0]
-        if n == 0:
+        if not proba:
             return FileResult(name, "done", None, 0, [], time.perf_counter() - t0)
+        start_s = np.concatenate(starts)
+        # A window is this file's when its first sample is.
+        first_sample = np.round(start_s * fs).astype(np.int64)
+        owned = (first_sample >= offset) & (first_sample < offset + frames)
         cands = pick_detections(
             np.concatenate(proba), model.classes, np.concatenate(segment), np.concatenate(band), threshold
         )
-        rows = []
+        cands = [c for c in cands if owned[c.window]]
         noise_psd = np.concatenate(noise_psd)
-        with AudioReader(path, channel) as reader:
-            fs = reader.sample_rate_hz
-            for c in cands:
-                rl, snr, clipped = _levels(
-                    reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz, noise_psd[c.window], frequency_hz
+        rows = []
+        shift = offset / fs
+        for c in cands:
+            rl, snr, clipped = _levels(
+                reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz, noise_psd[c.window], frequency_hz
+            )
+            rows.append(
+                (
+                    round(c.start_s - shift, 4),
+                    round(c.end_s - shift, 4),
+                    round(c.low_hz, 2),
+                    round(c.high_hz, 2),
+                    c.label,
+                    round(c.confidence, 6),
+                    round(rl, 3),
+                    None if not np.isfinite(snr) else round(snr, 3),
+                    clipped,
                 )
-                rows.append(
-                    (
-                        round(c.start_s, 4),
-                        round(c.end_s, 4),
-                        round(c.low_hz, 2),
-                        round(c.high_hz, 2),
-                        c.label,
-                        round(c.confidence, 6),
-                        round(rl, 3),
-                        None if not np.isfinite(snr) else round(snr, 3),
-                        clipped,
-                    )
-                )
-        return FileResult(name, "done", None, n, rows, time.perf_counter() - t0)
-    except AudioReadError as exc:
-        return FileResult(name, "failed", exc.reason, 0, [], time.perf_counter() - t0)
+            )
+    return FileResult(name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0)
 
 
 def _versions() -> dict[str, str]:
@@ -406,7 +449,8 @@ def _results(
     scheduler: str | None,
     block_s: float,
 ) -> Iterator[FileResult]:
-    args = [(f.path, f.name) for f in todo]
+    context = _continuity(dep)
+    args = [(f.path, f.name, context[f.name]) for f in todo]
     if not args:
         return
     if scheduler:
@@ -421,15 +465,17 @@ def _results(
         with client:
             shared = client.scatter(model, broadcast=True)
             futures = [
-                client.submit(score_file, shared, p, n, dep.chain, dep.channel, threshold, block_s, 1, pure=False)
-                for p, n in args
+                client.submit(
+                    score_file, shared, p, n, dep.chain, dep.channel, threshold, block_s, 1, True, *ctx, pure=False
+                )
+                for p, n, ctx in args
             ]
             for fut in as_completed(futures):
                 yield fut.result()
         return
     if jobs == 1:
-        for p, n in args:
-            yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s)
+        for p, n, ctx in args:
+            yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s, None, True, *ctx)
         return
     # Each worker gets its share of the cores for BLAS/OpenMP, so they do not oversubscribe.
     import os
@@ -440,10 +486,33 @@ def _results(
     # Workers load the model file once each (by path and hash), not once per file.
     yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(
         delayed(_score_file_with_model_file)(
-            model_path, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads
+            model_path, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads, True, *ctx
         )
-        for p, n in args
+        for p, n, ctx in args
     )
+
+
+def _continuity(dep: Deployment) -> dict[str, tuple[int, Neighbour | None, Neighbour | None]]:
+    """Per file: its offset in its continuous recording (samples) and its neighbours there.
+
+    Consecutive files whose join is within the deployment's gap tolerance form one
+    continuous recording; offsets add up sample counts from its first file.
+    """
+    out: dict[str, tuple[int, Neighbour | None, Neighbour | None]] = {}
+    files = dep.files
+    offset = 0
+    for i, f in enumerate(files):
+        prev = files[i - 1] if i > 0 else None
+        nxt = files[i + 1] if i + 1 < len(files) else None
+        joined_prev = prev is not None and abs((f.start_utc - prev.end_utc).total_seconds()) <= GAP_TOLERANCE_S
+        joined_next = nxt is not None and abs((nxt.start_utc - f.end_utc).total_seconds()) <= GAP_TOLERANCE_S
+        offset = offset + prev.info.frames if joined_prev else 0
+        out[f.name] = (
+            offset,
+            (str(prev.path), prev.info.frames) if joined_prev else None,
+            (str(nxt.path), nxt.info.frames) if joined_next else None,
+        )
+    return out
 
 
 @lru_cache(maxsize=2)

@@ -32,6 +32,7 @@ def noise_floor_steps(
     span_frames: int,
     stride: int,
     percentile: float,
+    first_available: int = 0,
 ) -> np.ndarray:
     """Percentile of the PSD around each step, dB re 1 µPa²/Hz.
 
@@ -48,6 +49,8 @@ def noise_floor_steps(
         span (only frames whose global number is a multiple of ``stride`` are used, so
         the result does not depend on where a block starts).
     percentile : float, 0..100
+    first_available : int, first frame of the recording (spans are cut there and at
+        ``n_frames_total``)
 
     Returns
     -------
@@ -57,7 +60,7 @@ def noise_floor_steps(
     n_freq, n_frames = psd_db.shape
     steps = np.asarray(steps, dtype=np.int64)
     half = span_frames // 2
-    lo = np.maximum(steps * step_frames - half, 0)
+    lo = np.maximum(steps * step_frames - half, first_available)
     hi = np.minimum(steps * step_frames - half + span_frames, n_frames_total)
     lo = lo + (-lo) % stride  # first multiple of stride inside the span
     if np.any(lo - first_frame < 0) or np.any(hi - first_frame > n_frames):

@@ -19,9 +19,9 @@ from .descriptors import DescriptorSettings, describe_windows
 from .levels import power_db
 from .noise import noise_floor_db, noise_floor_steps
 from .spectrogram import psd_spectrogram
-from .streaming import AudioReader
+from .streaming import AudioReader, SegmentReader
 
-__all__ = ["WindowTable", "describe_file", "window_count", "decimation_factor", "CLIP_THRESHOLD"]
+__all__ = ["WindowTable", "describe_file", "describe_stream", "window_count", "decimation_factor", "CLIP_THRESHOLD"]
 
 # A sample at or beyond this magnitude reached the converter's full scale.
 CLIP_THRESHOLD = 0.9999
@@ -101,6 +101,24 @@ def describe_file(
         yield from _describe(reader, fs, chain, settings, block_s)
 
 
+def describe_stream(
+    reader: AudioReader | SegmentReader,
+    chain: RecordingChain,
+    settings: DescriptorSettings,
+    block_s: float = 600.0,
+    window_range: tuple[int, int] | None = None,
+) -> Iterator[WindowTable]:
+    """Describe the windows [k0, k1) of an open stream (a file, or consecutive files).
+
+    Window k starts at the frame ``k * frames_per_window_hop`` counted from the stream's
+    sample 0, so every worker that reads a stretch of a continuous recording puts its
+    windows on the same grid. Times in the tables are seconds from sample 0.
+    """
+    fs = reader.sample_rate_hz
+    settings.grid.check_sample_rate(fs)
+    yield from _describe(reader, fs, chain, settings, block_s, window_range)
+
+
 def decimation_factor(sample_rate_hz: int, high_hz: float) -> int:
     """Integer factor that brings the rate down to at least three times the band's top.
 
@@ -121,7 +139,12 @@ _DECIMATION_PAD = 16
 
 
 def _describe(
-    reader: AudioReader, fs: int, chain: RecordingChain, settings: DescriptorSettings, block_s: float
+    reader: AudioReader | SegmentReader,
+    fs: int,
+    chain: RecordingChain,
+    settings: DescriptorSettings,
+    block_s: float,
+    window_range: tuple[int, int] | None = None,
 ) -> Iterator[WindowTable]:
     grid = settings.grid
     q = decimation_factor(fs, settings.high_hz)
@@ -130,10 +153,17 @@ def _describe(
     n_w, m = settings.frames_per_window, settings.frames_per_window_hop
     step, span = settings.frames_per_noise_step, settings.noise_span_frames
     half = span // 2
-    n_a = reader.frames // q  # analysis-rate samples with a whole set of originals behind them
-    f_total = _frame_total(n_a, fs_a, settings)
-    k_total = window_count(n_a, fs_a, settings)
-    if k_total == 0:
+    # Analysis-rate samples with a whole set of originals behind them, and the frames
+    # and windows that lie inside them (numbered from the stream's sample 0).
+    a0, a1 = -(-reader.start // q), reader.stop // q
+    if a1 - a0 < n_fft:
+        return
+    frames = grid.frames_within(a0, a1 - a0, fs_a)
+    f_first, f_total = int(frames[0]), int(frames[-1]) + 1
+    k_min, k_max = -(-f_first // m), (f_total - n_w) // m
+    if window_range is not None:
+        k_min, k_max = max(k_min, window_range[0]), min(k_max, window_range[1] - 1)
+    if k_max < k_min:
         return
     j_max = (f_total - 1) // step + 1
     window_len_a = int(round(settings.window_s * fs_a))
@@ -141,13 +171,13 @@ def _describe(
     fir_half = fir.size // 2
     pad = _DECIMATION_PAD * q
     per_block = max(int(round(block_s / settings.window_hop_s)), 1)
-    for k0 in range(0, k_total, per_block):
-        k1 = min(k0 + per_block, k_total)
+    for k0 in range(k_min, k_max + 1, per_block):
+        k1 = min(k0 + per_block, k_max + 1)
         fa, fb = k0 * m, (k1 - 1) * m + n_w  # frames the windows use: [fa, fb)
         j0, j1 = fa // step, min((fb - 1) // step + 1, j_max)
         steps = np.arange(j0, j1 + 1)
         steps = steps[steps <= j_max]
-        fr0 = max(min(fa, j0 * step - half), 0)
+        fr0 = max(min(fa, j0 * step - half), f_first)
         fr1 = min(max(fb, steps[-1] * step - half + span), f_total)
         frame_idx = np.arange(fr0, fr1)
         starts = grid.frame_start_samples(frame_idx, fs_a)
@@ -157,8 +187,10 @@ def _describe(
         # with the band filter's context.
         s0 = int(min(starts[0], w_start[0] - fir_half))
         s1 = int(max(starts[-1] + n_fft, w_start[-1] + window_len_a + fir_half))
-        s0, s1 = max(s0, 0), min(s1, n_a)
-        raw0, raw1 = max(q * s0 - pad, 0), min(q * s1 + pad, reader.frames)
+        s0, s1 = max(s0, a0), min(s1, a1)
+        # Raw spans start on a multiple of q, so decimated samples sit on the stream's grid.
+        raw0 = max(q * s0 - pad, q * a0)
+        raw1 = min(q * s1 + pad, reader.stop)
         raw = reader.read(raw0, raw1)
         if q > 1:
             analysed = signal.resample_poly(raw, 1, q).astype(np.float32)
@@ -167,7 +199,15 @@ def _describe(
             analysed = raw[s0 - raw0 : s1 - raw0]
         spec = psd_spectrogram(analysed, fs_a, grid, chain, first_sample=s0, frame_index=frame_idx)
         floor_steps = noise_floor_steps(
-            spec.psd_db, fr0, f_total, steps, step, span, settings.noise_stride, settings.noise_percentile
+            spec.psd_db,
+            fr0,
+            f_total,
+            steps,
+            step,
+            span,
+            settings.noise_stride,
+            settings.noise_percentile,
+            first_available=f_first,
         )
         used = slice(fa - fr0, fb - fr0)
         noise = noise_floor_db(floor_steps, steps, step, frame_idx[used])

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import soundfile as sf
 
-__all__ = ["AudioReadError", "AudioInfo", "AudioBlock", "AudioReader", "audio_info", "read_blocks"]
+__all__ = ["AudioReadError", "AudioInfo", "AudioBlock", "AudioReader", "SegmentReader", "audio_info", "read_blocks"]
 
 
 class AudioReadError(Exception):
@@ -193,6 +193,7 @@ class AudioReader:
         self.frames = int(self._handle.frames)
         self.sample_rate_hz = int(self._handle.samplerate)
         self._position = 0
+        self.start, self.stop = 0, self.frames  # the samples this reader can give
 
     def __enter__(self) -> AudioReader:
         return self
@@ -220,6 +221,60 @@ class AudioReader:
         if got < stop - start:
             raise AudioReadError(self.path, f"truncated: header says {self.frames} samples, data ends at {start + got}")
         return np.ascontiguousarray(data[:, self.channel])
+
+
+class SegmentReader:
+    """Consecutive files of a continuous recording read as one stream of samples.
+
+    Parameters
+    ----------
+    parts : list of (path, offset, frames)
+        Each file and the index of its first sample in the stream; they must follow one
+        another without gaps.
+    channel : int, 0-based
+
+    Attributes
+    ----------
+    start, stop : int, the stream indices [start, stop) the parts cover
+    sample_rate_hz : int, Hz
+    """
+
+    def __init__(self, parts: list[tuple[str | Path, int, int]], channel: int = 0) -> None:
+        self._parts: list[tuple[AudioReader, int]] = []
+        try:
+            for path, offset, _ in parts:
+                self._parts.append((AudioReader(path, channel), int(offset)))
+        except AudioReadError:
+            self.close()
+            raise
+        rates = {r.sample_rate_hz for r, _ in self._parts}
+        if len(rates) != 1:
+            self.close()
+            raise AudioReadError(parts[0][0], f"neighbouring files differ in sample rate ({sorted(rates)})")
+        self.sample_rate_hz = rates.pop()
+        self.start = min(o for _, o in self._parts)
+        self.stop = max(o + r.frames for r, o in self._parts)
+
+    def __enter__(self) -> SegmentReader:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Release the files."""
+        for r, _ in self._parts:
+            r.close()
+
+    def read(self, start: int, stop: int) -> np.ndarray:
+        """Stream samples [start, stop), clipped to [self.start, self.stop), float32."""
+        start, stop = max(int(start), self.start), min(int(stop), self.stop)
+        pieces = []
+        for r, o in self._parts:
+            a, b = max(start, o), min(stop, o + r.frames)
+            if b > a:
+                pieces.append(r.read(a - o, b - o))
+        return np.concatenate(pieces) if pieces else np.empty(0, dtype=np.float32)
 
 
 def _wav_declared_frames(path: Path) -> int | None:

@@ -249,3 +249,44 @@ def test_score_refuses_bad_calls(labelled, sweep_model, tmp_path, capsys):
     assert "no such model" in capsys.readouterr().err
     assert main(["export", str(tmp_path / "none.db"), "--out", str(tmp_path / "o.csv")]) == 2
     assert "no such detection store" in capsys.readouterr().err
+
+
+def test_continuous_recording_split_into_files_gives_the_same_detections(labelled, sweep_model, tmp_path):
+    # One continuous recording written as one file and as three consecutive files: calls
+    # across the joins are found once, at the same times (absolute, UTC) as in one file.
+    import soundfile as sf
+    from conftest import write_manifest
+
+    manifest, labels, _ = labelled
+    src = sorted((manifest.parent / "audio").glob("*.wav"))
+    x = np.concatenate([sf.read(p, dtype="int16")[0] for p in src[:3]])  # 12 min of sweeps
+    t0 = datetime(2033, 6, 1, 0, 0, 0)
+    one, three = tmp_path / "one", tmp_path / "three"
+    for folder in (one, three):
+        (folder / "audio").mkdir(parents=True)
+        write_manifest(folder, name=folder.name)
+    sf.write(one / "audio" / f"rec_{t0:%Y%m%dT%H%M%SZ}.wav", x, 2000, subtype="PCM_16")
+    # Joins at 200.3 s and 431.7 s, not on any window grid.
+    cuts = [0, int(200.3 * 2000), int(431.7 * 2000), x.size]
+    for a, b in zip(cuts[:-1], cuts[1:], strict=True):
+        name = f"rec_{t0 + timedelta(seconds=a / 2000):%Y%m%dT%H%M%SZ}.wav"
+        sf.write(three / "audio" / name, x[a:b], 2000, subtype="PCM_16")
+    # File names carry whole seconds: the joins differ from the names by under a second,
+    # within the deployment's tolerance, so the three files are one continuous recording.
+    score_deployment(sweep_model, one / "manifest.toml", tmp_path / "one.db")
+    score_deployment(sweep_model, three / "manifest.toml", tmp_path / "three.db")
+
+    def absolute(db, folder):
+        dep = load_deployment(folder / "manifest.toml")
+        offsets, acc = {}, 0
+        for f in dep.files:
+            offsets[f.name] = acc
+            acc += f.info.frames / 2000
+        return sorted(
+            (round(offsets[r[0]] + r[1], 3), round(offsets[r[0]] + r[2], 3), r[5], round(r[6], 5))
+            for r in _detections(db)
+        )
+
+    a, b = absolute(tmp_path / "one.db", one), absolute(tmp_path / "three.db", three)
+    assert len(a) > 10
+    assert a == b
