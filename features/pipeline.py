@@ -21,7 +21,7 @@ from .noise import noise_floor_db, noise_floor_steps
 from .spectrogram import psd_spectrogram
 from .streaming import AudioReader, SegmentReader
 
-__all__ = ["WindowTable", "describe_file", "describe_stream", "window_count", "decimation_factor", "CLIP_THRESHOLD"]
+__all__ = ["WindowTable", "describe_file", "describe_stream", "decimation_factor", "CLIP_THRESHOLD"]
 
 # A sample at or beyond this magnitude reached the converter's full scale.
 CLIP_THRESHOLD = 0.9999
@@ -51,21 +51,6 @@ class WindowTable:
     segment_s: np.ndarray
     noise_psd: np.ndarray
     frequency_hz: np.ndarray
-
-
-def _frame_total(n_samples: int, fs: float, settings: DescriptorSettings) -> int:
-    grid = settings.grid
-    n_fft = grid.window_samples(fs)
-    if n_samples < n_fft:
-        return 0
-    return int(grid.frames_within(0, n_samples, fs)[-1]) + 1
-
-
-def window_count(n_samples: int, sample_rate_hz: float, settings: DescriptorSettings) -> int:
-    """Number of whole analysis windows in a recording of ``n_samples`` samples."""
-    frames = _frame_total(n_samples, sample_rate_hz, settings)
-    n_w, m = settings.frames_per_window, settings.frames_per_window_hop
-    return 0 if frames < n_w else (frames - n_w) // m + 1
 
 
 def describe_file(
