@@ -363,7 +363,7 @@ def _file_pressure(
     wind: tuple[np.ndarray, np.ndarray],
     rng: np.random.Generator,
     water: Seawater,
-) -> tuple[np.ndarray, list[tuple[_Call, np.ndarray, slice]]]:
+) -> tuple[np.ndarray, list[tuple[_Call, np.ndarray, slice]], np.ndarray]:
     fs = site.sample_rate_hz
     noise = _ambient_noise(site, file_start_s, n, ships, wind, rng)
     # Impulsive transients: short decaying broadband knocks.
@@ -383,7 +383,7 @@ def _file_pressure(
         p = _call_pressure(call, np.arange(i0, i1) / fs - rel0, site, water)
         total[seg] += p
         placed.append((call, p, seg))
-    return total, [(c, p, s) for c, p, s in placed] + [(None, noise, slice(0, n))]
+    return total, placed, noise
 
 
 def _chain(site: RecorderSite) -> RecordingChain:
@@ -480,8 +480,7 @@ def _write_site(site: RecorderSite, out: Path, hours: float, rng: np.random.Gene
             for c in calls
             if c.time_s >= file_start + 0.5 and c.time_s + c.shape.duration_s + 0.5 <= file_start + n / fs
         ]
-        pressure, parts = _file_pressure(site, file_start, n, inside, ships, wind, rng, water)
-        noise = parts[-1][1]
+        pressure, placed, noise = _file_pressure(site, file_start, n, inside, ships, wind, rng, water)
         x = samples_from_pressure(pressure, fs, chain)
         if tone_amp > 0 and site.electronic_tone_hz > 0:
             # The recorder's own electronics: a tone added after the hydrophone.
@@ -490,7 +489,7 @@ def _write_site(site: RecorderSite, out: Path, hours: float, rng: np.random.Gene
         np.clip(x, -1.0, full_scale, out=x)
         sf.write(audio / name, x.astype(np.float32), fs, subtype=site.subtype)
         truth.files.append({"file": name, "start_utc": start_utc, "duration_s": n / fs})
-        for call, p, seg in parts[:-1]:
+        for call, p, seg in placed:
             rel0 = call.time_s - file_start
             lo_i, hi_i = int(round(rel0 * fs)), int(round((rel0 + call.shape.duration_s) * fs))
             low, high = _band_of(call.shape)

@@ -13,7 +13,6 @@ import hashlib
 import json
 import platform
 import socket
-import sys
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -525,8 +524,3 @@ def _cached_model(model_path: str, content_sha256: str) -> CallModel:
 
 def _score_file_with_model_file(model_path: str, content_sha256: str, *args: Any) -> FileResult:
     return score_file(_cached_model(model_path, content_sha256), *args)
-
-
-def stderr_progress(line: str) -> None:
-    """Progress lines on stderr."""
-    print(f"callsieve: {line}", file=sys.stderr, flush=True)

@@ -17,7 +17,6 @@ Schema (``SCHEMA_VERSION`` 1):
 
 from __future__ import annotations
 
-import json
 import sqlite3
 from collections.abc import Iterable
 from datetime import UTC, datetime
@@ -249,11 +248,3 @@ def latest_run_id(con: sqlite3.Connection, run_id: int | None = None) -> int:
     if row is None:
         raise InputError("the store holds no scoring run yet; run 'callsieve score' first")
     return int(row[0])
-
-
-def run_info(con: sqlite3.Connection, run_id: int) -> dict[str, Any]:
-    """A run's row as plain values (JSON columns decoded)."""
-    row = dict(con.execute("SELECT * FROM runs WHERE run_id=?", (run_id,)).fetchone())
-    for key in ("classes", "parameters", "versions"):
-        row[key] = json.loads(row[key])
-    return row

@@ -8,7 +8,6 @@ URI works the same way.
 from __future__ import annotations
 
 import json
-import os
 import tempfile
 from pathlib import Path
 from typing import Any
@@ -189,8 +188,3 @@ def log_training_run(
         if register and getattr(info, "registered_model_version", None) is not None:
             out["model_version"] = str(info.registered_model_version)
     return out
-
-
-def tracking_uri_in_force(explicit: str | None) -> str:
-    """The store a run goes to: the explicit URI, else MLFLOW_TRACKING_URI, else MLflow's default."""
-    return explicit or os.environ.get("MLFLOW_TRACKING_URI") or "sqlite:///mlflow.db"

@@ -110,7 +110,7 @@ def choose_settings(
 
     Band: the 5th to 95th percentile of the labels' edges, widened by 20 % below and 15 %
     above (the whole band below Nyquist where labels give none). Frames last about a
-    quarter of the median call; windows hold the 90th-percentile call with room to spare
+    sixth of the median call; windows hold the 90th-percentile call with room to spare
     and start every quarter window. ``overrides`` (from a config) win over every choice.
     """
     overrides = dict(overrides or {})
@@ -131,32 +131,17 @@ def choose_settings(
     window_hop = overrides.get("window_hop_s", max(round(window / 4.0 / frame_hop), 1) * frame_hop)
     noise_span = overrides.get("noise_span_s", max(60.0, 10.0 * window))
     noise_step = overrides.get("noise_step_s", max(round(5.0 / frame_hop), 1) * frame_hop)
-    rest = {
-        k: v
-        for k, v in overrides.items()
-        if k
-        not in {
-            "low_hz",
-            "high_hz",
-            "resolution_hz",
-            "frame_hop_s",
-            "window_s",
-            "window_hop_s",
-            "noise_span_s",
-            "noise_step_s",
-        }
+    chosen = {
+        "low_hz": low,
+        "high_hz": high,
+        "resolution_hz": resolution,
+        "frame_hop_s": frame_hop,
+        "window_s": window,
+        "window_hop_s": window_hop,
+        "noise_span_s": noise_span,
+        "noise_step_s": noise_step,
     }
-    return DescriptorSettings(
-        low_hz=float(low),
-        high_hz=float(high),
-        resolution_hz=float(resolution),
-        frame_hop_s=float(frame_hop),
-        window_s=float(window),
-        window_hop_s=float(window_hop),
-        noise_span_s=float(noise_span),
-        noise_step_s=float(noise_step),
-        **rest,
-    )
+    return DescriptorSettings(**({k: float(v) for k, v in chosen.items()} | overrides))
 
 
 def _assign(
@@ -216,10 +201,10 @@ def collect_examples(
     counts: dict[str, dict[str, int]] = {}
     n_described, seconds = 0, 0.0
     keep_classes = {target} if target else None
-    files_of = [{f.name: f for f in s.deployment.files} for s in sets]
-    wanted = [files_of[i][a.file] for i, s in enumerate(sets) for a in s.annotations]
-    unique = {(id(f)): f for f in wanted}
-    total_files, total_s = len(unique), sum(f.duration_s for f in unique.values())
+    # The distinct annotated files, for the progress lines.
+    annotated = {(s.deployment.name, a.file): s.deployment for s in sets for a in s.annotations}
+    durations = {f.name: f.duration_s for s in sets for f in s.deployment.files}
+    total_files, total_s = len(annotated), sum(durations[name] for _, name in annotated)
     done_files, t_start = 0, time.perf_counter()
     for lset in sets:
         dep = lset.deployment

@@ -1,7 +1,7 @@
 """Contour and band-energy descriptors of analysis windows, in physical units.
 
 One row per analysis window, computed for all windows of a block at once. The table
-:data:`DESCRIPTORS` gives each descriptor's name, unit and meaning; the README prints it.
+The table :func:`descriptor_table` gives each descriptor's name, unit and meaning; the README prints it.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from .spectrogram import SpectrogramGrid
 __all__ = [
     "DESCRIPTOR_VERSION",
     "DescriptorSettings",
-    "DESCRIPTORS",
+    "descriptor_table",
     "descriptor_names",
     "describe_windows",
     "subband_edges_hz",
@@ -176,7 +176,7 @@ def descriptor_names(settings: DescriptorSettings) -> list[str]:
     return [n for n, _, _ in _CONTOUR] + [n for n, _, _ in _ENERGY] + sub
 
 
-def DESCRIPTORS(settings: DescriptorSettings | None = None) -> list[tuple[str, str, str]]:  # noqa: N802
+def descriptor_table(settings: DescriptorSettings | None = None) -> list[tuple[str, str, str]]:
     """(name, unit, meaning) of every descriptor; sub-band edges follow ``settings``."""
     n_sub = settings.n_subbands if settings is not None else 4
     rows = list(_CONTOUR) + list(_ENERGY)
