@@ -28,7 +28,7 @@ from callsieve.features.streaming import AudioReader, AudioReadError, SegmentRea
 
 from .calibrate import utc_iso
 from .deployment import GAP_TOLERANCE_S, Deployment, load_deployment, parse_file_start
-from .detections import pick_detections
+from .detections import Candidate, pick_detections
 from .errors import InputError
 from .labels import BACKGROUND
 from .model import CallModel, load_model
@@ -61,37 +61,61 @@ class FileResult:
     seconds: float = 0.0
 
 
+# Detections whose levels share one read of the audio: spans of at most this much recorded
+# time (s). Fixed, so the levels do not depend on the block size.
+_LEVEL_SPAN_S = 600.0
+
+
 def _levels(
     reader: SegmentReader,
-    fs: int,
     chain: RecordingChain,
-    start_s: float,
-    end_s: float,
-    low_hz: float,
-    high_hz: float,
+    cands: list[Candidate],
     noise_psd: np.ndarray,
     frequency_hz: np.ndarray,
-) -> tuple[float, float, int]:
-    """Received level (dB re 1 µPa), SNR (dB) and clip flag of one detection.
+) -> list[tuple[float, float, int]]:
+    """Received level (dB re 1 µPa), SNR (dB) and clip flag of each detection.
 
     The received level is the band-limited rms SPL of the calibrated waveform over the
     detection; the noise is the noise floor's power in the same band at the peak window
-    (``noise_psd``, µPa²/Hz, on ``frequency_hz``), so SNR = (signal power) / (noise power).
+    (``noise_psd[c.window]``, µPa²/Hz, on ``frequency_hz``), so SNR = (signal power) /
+    (noise power). Detections close in time share one read and one calibration of the
+    audio (spans of at most ``_LEVEL_SPAN_S``).
     """
+    fs = reader.sample_rate_hz
     taps = chain.fir_length(fs)
-    a, b = int(round(start_s * fs)), max(int(round(end_s * fs)), int(round(start_s * fs)) + 2)
-    r0, r1 = max(a - taps, reader.start), min(b + taps, reader.stop)
-    raw = reader.read(r0, r1)
-    p = pressure_from_samples(raw.astype(np.float64), fs, chain)
-    rl = float(band_spl_db(p[a - r0 : b - r0], fs, low_hz, high_hz))
-    clipped = int(np.any(np.abs(raw[a - r0 : b - r0]) >= CLIP_THRESHOLD))
+    bounds = []
+    for c in cands:
+        a = int(round(c.start_s * fs))
+        bounds.append((a, max(int(round(c.end_s * fs)), a + 2)))
+    out: list[tuple[float, float, int]] = [(float("nan"), float("nan"), 0)] * len(cands)
+    order = sorted(range(len(cands)), key=lambda i: bounds[i][0])
     df = float(frequency_hz[1] - frequency_hz[0])
-    inside = (frequency_hz >= low_hz - df / 2) & (frequency_hz <= high_hz + df / 2)
-    noise = float(np.sum(noise_psd[inside]) * df)
-    if not noise > 0:
-        return rl, float("nan"), clipped
-    excess = 10.0 ** (rl / 10.0) - noise
-    return rl, float(10.0 * np.log10(max(excess, 1e-3 * noise) / noise)), clipped
+    span_samples = int(_LEVEL_SPAN_S * fs)
+    k = 0
+    while k < len(order):
+        first = bounds[order[k]][0]
+        group = [order[k]]
+        k += 1
+        while k < len(order) and bounds[order[k]][1] - first <= span_samples:
+            group.append(order[k])
+            k += 1
+        r0 = max(first - taps, reader.start)
+        r1 = min(max(bounds[i][1] for i in group) + taps, reader.stop)
+        raw = reader.read(r0, r1)
+        p = pressure_from_samples(raw.astype(np.float64), fs, chain)
+        for i in group:
+            a, b = bounds[i]
+            c = cands[i]
+            rl = float(band_spl_db(p[a - r0 : b - r0], fs, c.low_hz, c.high_hz))
+            clipped = int(np.any(np.abs(raw[a - r0 : b - r0]) >= CLIP_THRESHOLD))
+            inside = (frequency_hz >= c.low_hz - df / 2) & (frequency_hz <= c.high_hz + df / 2)
+            noise = float(np.sum(noise_psd[c.window][inside]) * df)
+            if not noise > 0:
+                out[i] = (rl, float("nan"), clipped)
+                continue
+            excess = 10.0 ** (rl / 10.0) - noise
+            out[i] = (rl, float(10.0 * np.log10(max(excess, 1e-3 * noise) / noise)), clipped)
+    return out
 
 
 #: A neighbouring file of a continuous recording: its path and its number of samples.
@@ -187,49 +211,37 @@ def _score_file(
     i_act = names.index("contour_active_fraction")
     i_snr = names.index("snr_db")
     background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
-    proba, segment, band, noise_psd, starts = [], [], [], [], []
+    values, segment, noise_psd, starts = [], [], [], []
     with SegmentReader(parts, channel) as reader:
         fs = reader.sample_rate_hz
         hop = settings.window_hop_s
         k0 = int(np.floor(offset / fs / hop)) - _CONTEXT_WINDOWS
         k1 = int(np.ceil((offset + frames) / fs / hop)) + _CONTEXT_WINDOWS
+        frequency_hz = None
         for table in describe_stream(reader, chain, settings, block_s, (k0, k1)):
-            v = table.values
-            if gate and background is not None:
-                # Windows with no trace above the floor and no in-band excess skip the model.
-                keep = (v[:, i_act] > 0) | (v[:, i_snr] > GATE_SNR_DB)
-                p = np.zeros((v.shape[0], len(model.classes)))
-                p[:, background] = 1.0
-                if keep.any():
-                    p[keep] = model.estimator.predict_proba(v[keep])
-                proba.append(p)
-            else:
-                proba.append(model.estimator.predict_proba(v))
+            values.append(table.values)
             segment.append(table.segment_s)
             noise_psd.append(table.noise_psd)
             starts.append(table.start_s)
             frequency_hz = table.frequency_hz
-            active = v[:, i_act] > 0
-            lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
-            hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
-            band.append(np.column_stack([lo, hi]))
-        if not proba:
+        if not values:
             return FileResult(name, "done", None, 0, [], time.perf_counter() - t0)
+        # One prediction per file: a boosted model's cost is mostly per call and per tree.
+        v = np.concatenate(values)
+        proba = _predict(model, v, background if gate else None, i_act, i_snr)
+        active = v[:, i_act] > 0
+        lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
+        hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
         start_s = np.concatenate(starts)
         # A window is this file's when its first sample is.
         first_sample = np.round(start_s * fs).astype(np.int64)
         owned = (first_sample >= offset) & (first_sample < offset + frames)
-        cands = pick_detections(
-            np.concatenate(proba), model.classes, np.concatenate(segment), np.concatenate(band), threshold
-        )
+        cands = pick_detections(proba, model.classes, np.concatenate(segment), np.column_stack([lo, hi]), threshold)
         cands = [c for c in cands if owned[c.window]]
-        noise_psd = np.concatenate(noise_psd)
+        levels = _levels(reader, chain, cands, np.concatenate(noise_psd), frequency_hz)
         rows = []
         shift = offset / fs
-        for c in cands:
-            rl, snr, clipped = _levels(
-                reader, fs, chain, c.start_s, c.end_s, c.low_hz, c.high_hz, noise_psd[c.window], frequency_hz
-            )
+        for c, (rl, snr, clipped) in zip(cands, levels, strict=True):
             rows.append(
                 (
                     round(c.start_s - shift, 4),
@@ -244,6 +256,29 @@ def _score_file(
                 )
             )
     return FileResult(name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0)
+
+
+# Rows per call of the model: bounds the memory of one prediction on a long file.
+_PREDICT_ROWS = 65536
+
+
+def _predict(model: CallModel, values: np.ndarray, background: int | None, i_act: int, i_snr: int) -> np.ndarray:
+    """Calibrated probabilities of every window; gated windows are background unasked.
+
+    With ``background`` (its column) given, windows with no trace above the floor and no
+    in-band excess (see GATE_SNR_DB) skip the model.
+    """
+    proba = np.zeros((values.shape[0], len(model.classes)))
+    if background is None:
+        keep = np.ones(values.shape[0], dtype=bool)
+    else:
+        keep = (values[:, i_act] > 0) | (values[:, i_snr] > GATE_SNR_DB)
+        proba[:, background] = 1.0
+    rows = np.flatnonzero(keep)
+    for a in range(0, rows.size, _PREDICT_ROWS):
+        part = rows[a : a + _PREDICT_ROWS]
+        proba[part] = model.estimator.predict_proba(values[part])
+    return proba
 
 
 def _versions() -> dict[str, str]:

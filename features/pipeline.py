@@ -199,7 +199,7 @@ def _describe(
         first = k * m - fa
         # Waveform measures: band-limited pressure at the analysis rate; clipping in the
         # samples as recorded, where one sample at full scale is enough.
-        pressure = signal.oaconvolve(analysed.astype(np.float64), fir, mode="same")
+        pressure = signal.oaconvolve(analysed, fir.astype(np.float32), mode="same")
         p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
         clipped = _window_clipped(raw, q * w_start - raw0, int(round(settings.window_s * fs)))
         values, segment, noise_psd = describe_windows(
