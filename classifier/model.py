@@ -12,7 +12,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import skops.io as sio
 from callsieve.features.descriptors import DESCRIPTOR_VERSION, DescriptorSettings
 from sklearn.base import BaseEstimator, ClassifierMixin, clone
 from sklearn.ensemble import HistGradientBoostingClassifier, RandomForestClassifier
@@ -298,6 +297,8 @@ def _digest(estimator_bytes: bytes, metadata: dict) -> str:
 
 def save_model(model: CallModel, path: str | Path) -> str:
     """Write the model file; return its content hash (sha256 hex)."""
+    import skops.io as sio  # here, not at import: it costs a second, and workers do not need it
+
     est_bytes = sio.dumps(model.estimator)
     meta = model.metadata()
     model.content_sha256 = _digest(est_bytes, meta)
@@ -323,6 +324,8 @@ def load_model(path: str | Path) -> CallModel:
         For a file that is not a callsieve model, holds untrusted types, was altered,
         or was made for another descriptor version.
     """
+    import skops.io as sio
+
     path = Path(path)
     if not path.is_file():
         raise InputError(f"{path}: no such model file; make one with 'callsieve train'")

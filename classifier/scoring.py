@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import hashlib
 import json
+import pickle
 import platform
 import socket
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
-from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
@@ -517,10 +517,12 @@ def _results(
     from joblib import Parallel, delayed
 
     threads = max((os.cpu_count() or 1) // jobs, 1)
-    # Workers load the model file once each (by path and hash), not once per file.
+    # The model travels with each task as bytes this process pickled once (a few MB);
+    # each worker unpickles it once, in milliseconds, and never reads the model file.
+    blob = pickle.dumps(model, protocol=pickle.HIGHEST_PROTOCOL)
     yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(
-        delayed(_score_file_with_model_file)(
-            model_path, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads, True, *ctx
+        delayed(_score_file_with_model_bytes)(
+            blob, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads, True, *ctx
         )
         for p, n, ctx in args
     )
@@ -549,13 +551,16 @@ def _continuity(dep: Deployment) -> dict[str, tuple[int, Neighbour | None, Neigh
     return out
 
 
-@lru_cache(maxsize=2)
-def _cached_model(model_path: str, content_sha256: str) -> CallModel:
-    model = load_model(model_path)
-    if model.content_sha256 != content_sha256:
-        raise InputError(f"{model_path}: the model file changed while scoring; run the command again")
-    return model
+_worker_model: tuple[str, CallModel] | None = None
 
 
-def _score_file_with_model_file(model_path: str, content_sha256: str, *args: Any) -> FileResult:
-    return score_file(_cached_model(model_path, content_sha256), *args)
+def _score_file_with_model_bytes(blob: bytes, content_sha256: str, *args: Any) -> FileResult:
+    """score_file in a worker process, with the model unpickled once per worker.
+
+    The bytes come from the parent process that loaded and checked the model file, so
+    unpickling them trusts nothing the parent did not already trust.
+    """
+    global _worker_model
+    if _worker_model is None or _worker_model[0] != content_sha256:
+        _worker_model = (content_sha256, pickle.loads(blob))
+    return score_file(_worker_model[1], *args)
