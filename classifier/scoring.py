@@ -66,7 +66,7 @@ class FileResult:
 _LEVEL_SPAN_S = 600.0
 
 
-def _levels(
+def measure_levels(
     reader: SegmentReader,
     chain: RecordingChain,
     cands: list[Candidate],
@@ -238,7 +238,7 @@ def _score_file(
         owned = (first_sample >= offset) & (first_sample < offset + frames)
         cands = pick_detections(proba, model.classes, np.concatenate(segment), np.column_stack([lo, hi]), threshold)
         cands = [c for c in cands if owned[c.window]]
-        levels = _levels(reader, chain, cands, np.concatenate(noise_psd), frequency_hz)
+        levels = measure_levels(reader, chain, cands, np.concatenate(noise_psd), frequency_hz)
         rows = []
         shift = offset / fs
         for c, (rl, snr, clipped) in zip(cands, levels, strict=True):
