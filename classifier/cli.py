@@ -149,6 +149,25 @@ def _cmd_export(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_evaluate(args: argparse.Namespace) -> int:
+    from .evaluate import evaluate, format_evaluation
+
+    metrics = evaluate(
+        args.db,
+        args.truth,
+        args.out,
+        run_id=args.run,
+        target_precision=args.target_precision,
+        tolerance_s=args.tolerance_s,
+        tracking_uri=args.tracking_uri,
+        complete_truth=args.complete_truth,
+        progress=_progress(args),
+    )
+    print(format_evaluation(metrics))
+    print(f"metrics, tables and figures in {metrics['out']}")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every verb."""
     common = argparse.ArgumentParser(add_help=False)
@@ -230,6 +249,35 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--label", metavar="L", help="only this class")
     p.add_argument("--min-confidence", type=float, metavar="P", help="only detections at or above P")
     p.set_defaults(func=_cmd_export)
+
+    p = verbs.add_parser(
+        "evaluate", parents=[common], help="judge a scoring run and an energy baseline against labelled truth"
+    )
+    p.add_argument("db", metavar="DB", help="detection store")
+    p.add_argument("--truth", required=True, metavar="CSV", help="label table of fully annotated files (SPEC §2)")
+    p.add_argument("--out", required=True, metavar="DIR", help="folder for metrics.json, tables and figures")
+    p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
+    p.add_argument(
+        "--target-precision",
+        type=float,
+        default=0.9,
+        metavar="P",
+        help="precision the reported threshold must reach (default 0.9)",
+    )
+    p.add_argument(
+        "--tolerance-s",
+        type=float,
+        default=0.5,
+        metavar="S",
+        help="seconds by which truth intervals are widened for matching (default 0.5)",
+    )
+    p.add_argument("--tracking-uri", metavar="URI", help="MLflow store of the model's training run, to log to")
+    p.add_argument(
+        "--complete-truth",
+        action="store_true",
+        help="the truth table covers every file of the deployment: files it does not name hold no call",
+    )
+    p.set_defaults(func=_cmd_evaluate)
     return parser
 
 

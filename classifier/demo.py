@@ -114,6 +114,17 @@ def run_demo(
     con.close()
     summary["scoring"] = scored | {"export": exported["out"], "at_0.5": by_label}
     summary["seconds"]["scoring"] = round(time.perf_counter() - t3, 1)
+
+    # Judge the run and the energy baseline against the survey's truth, which covers
+    # every survey file (the scenario knows every call it wrote).
+    t4 = time.perf_counter()
+    from .evaluate import evaluate
+
+    say(f"demo: evaluating run {scored['run_id']} and the energy baseline against {summary['survey_truth']}")
+    summary["evaluation"] = evaluate(
+        db, summary["survey_truth"], out / "evaluation", complete_truth=True, tracking_uri=tracking_uri
+    )
+    summary["seconds"]["evaluation"] = round(time.perf_counter() - t4, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
 
@@ -178,6 +189,26 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         )
         lines.append("  at confidence >= 0.5: " + ", ".join(f"{k} {v}" for k, v in sorted(sc["at_0.5"].items())))
         lines.append(f"  detection table {sc['export']}")
+    if "evaluation" in summary:
+        ev = summary["evaluation"]
+        lines += ["", f"Evaluation against the survey truth (SPEC §6 matching, tolerance {ev['tolerance_s']:g} s)"]
+        lines.append(
+            f"  {'label':<14} {'calls':>5}  {'AP model':>8}  {'AP energy':>9}  "
+            f"{'threshold for precision ' + format(ev['target_precision'], 'g'):>27}  recall there (95% CI by hour)"
+        )
+        for c, m in ev["classes"].items():
+            marker = "  (target)" if c == summary["target_label"] else ""
+            thr = m["threshold_for_target_precision"]
+            thr_txt = "none" if thr is None else format(thr, ".2f")
+            op = m["operating"]
+            ci = op["recall_ci95"]
+            rec = "-" if op["recall"] is None else f"{op['recall']:.2f} ({ci[0] or 0:.2f}-{ci[1] or 0:.2f})"
+            lines.append(
+                f"  {c:<14} {m['truth_calls']:>5}  {m['average_precision'] or 0:>8.3f}  "
+                f"{m['baseline']['average_precision'] or 0:>9.3f}  {thr_txt:>27}  "
+                f"{rec}{marker}"
+            )
+        lines.append(f"  metrics, tables and figures in {ev['out']}")
     lines += [
         "",
         "Files",

@@ -136,3 +136,14 @@ def sweep_model(labelled, tmp_path_factory):
     path = tmp_path_factory.mktemp("sweep-model") / "model.skops"
     train([manifest], [labels], path, config_path=config, track=False)
     return path
+
+
+@pytest.fixture(scope="session")
+def reference(labelled, sweep_model, tmp_path_factory):
+    """An uninterrupted single-process scoring run over the labelled site."""
+    from callsieve.classifier.scoring import score_deployment
+
+    manifest, _, _ = labelled
+    db = tmp_path_factory.mktemp("ref") / "ref.db"
+    summary = score_deployment(sweep_model, manifest, db)
+    return db, summary

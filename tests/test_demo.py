@@ -29,6 +29,23 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
 
     rows = list(csv.DictReader(open(out / "detections.csv")))
     assert list(rows[0]) == DETECTION_COLUMNS and {r["deployment"] for r in rows} == {"south-slope"}
+    # The evaluation step: model and energy baseline side by side, logged to the training run.
+    assert "AP energy" in page
+    metrics = json.loads((out / "evaluation" / "metrics.json").read_text())
+    assert metrics["complete_truth"] and metrics["files_judged"] == 4
+    assert metrics["mlflow_run_id"] == scenario_run_id(out)
+    target = metrics["classes"]["rising-moan"]
+    assert target["average_precision"] is not None and target["baseline"]["average_precision"] is not None
+
+
+def scenario_run_id(out):
+    """The MLflow run the demo's training recorded (read from its store)."""
+    import mlflow
+
+    mlflow.set_tracking_uri(f"sqlite:///{out / 'mlflow.db'}")
+    runs = mlflow.search_runs(search_all_experiments=True, output_format="list")
+    assert len(runs) == 1
+    return runs[0].info.run_id
 
 
 def test_demo_refuses_a_foreign_folder(tmp_path, capsys):

@@ -52,15 +52,6 @@ def _same(a, b):
         )
 
 
-@pytest.fixture(scope="module")
-def reference(labelled, sweep_model, tmp_path_factory):
-    """An uninterrupted single-process run over the labelled site."""
-    manifest, _, _ = labelled
-    db = tmp_path_factory.mktemp("ref") / "ref.db"
-    summary = score_deployment(sweep_model, manifest, db)
-    return db, summary
-
-
 def test_pick_detections_keeps_two_nearby_calls_apart():
     # Two calls a few windows apart, with a dip between: two detections; one broad rise: one.
     p = np.array([0.0, 0.2, 0.9, 0.95, 0.3, 0.05, 0.4, 0.85, 0.2, 0.0, 0.5, 0.6, 0.7, 0.6, 0.5, 0.0])

@@ -1,0 +1,613 @@
+"""`callsieve evaluate`: a scoring run and the energy baseline judged against truth.
+
+Reads the store, the truth table and (for the baseline and the calls' levels) the
+audio; writes ``metrics.json``, CSV tables and figures into the output folder, and,
+when the model's MLflow run is reachable, logs the evaluation to it. The figures
+themselves come from the pure functions of :mod:`callsieve.classifier.evaluation`.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import os
+import time
+from collections.abc import Callable
+from dataclasses import asdict
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from callsieve.features.descriptors import DescriptorSettings
+
+from .baseline import EnergyDetector, call_levels, energy_detections
+from .deployment import load_deployment
+from .errors import InputError
+from .evaluation import (
+    PrecisionRecall,
+    average_precision,
+    bootstrap_over_hours,
+    hour_presence,
+    match_detections,
+    precision_recall,
+    recall_by_bin,
+    threshold_table,
+)
+from .export import CAUTION
+from .labels import BACKGROUND, read_label_table
+from .store import latest_run_id, open_store
+
+__all__ = ["evaluate", "format_evaluation", "METRIC_KEYS", "THRESHOLDS"]
+
+#: Thresholds of the threshold table (the model's confidence).
+THRESHOLDS = np.round(np.r_[np.arange(0.1, 0.951, 0.05), 0.99], 2)
+#: SNR bins of the recall curve, dB; values beyond go to the end bins.
+SNR_EDGES_DB = np.arange(-20.0, 40.1, 5.0)
+#: Width of the received-level bins, dB.
+LEVEL_BIN_DB = 5.0
+
+#: Keys of ``metrics.json`` per class (see the README's evaluation section).
+METRIC_KEYS = (
+    "truth_calls",
+    "detections",
+    "average_precision",
+    "threshold_for_target_precision",
+    "recall_at_target_precision",
+    "f1_optimal_threshold",
+    "f1_at_optimal",
+    "operating_threshold",
+    "operating",
+    "hour_presence",
+    "baseline",
+)
+
+
+def _epoch_s(iso_utc: str) -> float:
+    return datetime.fromisoformat(iso_utc.replace("Z", "+00:00")).timestamp()
+
+
+def _finite(x: float) -> float | None:
+    return None if x is None or not math.isfinite(x) else float(x)
+
+
+def _curve_points(curve: PrecisionRecall, target_precision: float) -> dict[str, Any]:
+    """Threshold for a target precision (the lowest that reaches it) and the F1 optimum."""
+    out: dict[str, Any] = {
+        "threshold_for_target_precision": None,
+        "precision_at_target": None,
+        "recall_at_target_precision": None,
+    }
+    ok = np.flatnonzero(curve.precision >= target_precision)
+    if ok.size:
+        i = int(ok[-1])  # thresholds descend: the last that reaches it is the lowest
+        out |= {
+            "threshold_for_target_precision": float(curve.threshold[i]),
+            "precision_at_target": float(curve.precision[i]),
+            "recall_at_target_precision": float(curve.recall[i]),
+        }
+    f1 = curve.f1
+    if f1.size:
+        i = int(np.argmax(f1))
+        out |= {
+            "f1_optimal_threshold": float(curve.threshold[i]),
+            "f1_at_optimal": float(f1[i]),
+            "precision_at_f1_optimal": float(curve.precision[i]),
+            "recall_at_f1_optimal": float(curve.recall[i]),
+        }
+    else:
+        out |= {"f1_optimal_threshold": None, "f1_at_optimal": 0.0}
+    return out
+
+
+def evaluate(
+    db: str | Path,
+    truth_csv: str | Path,
+    out_dir: str | Path,
+    run_id: int | None = None,
+    target_precision: float = 0.9,
+    tolerance_s: float = 0.5,
+    tracking_uri: str | None = None,
+    complete_truth: bool = False,
+    n_resamples: int = 2000,
+    progress: Callable[[str], None] | None = None,
+) -> dict[str, Any]:
+    """Judge a scoring run and the energy baseline against a truth table (SPEC §6).
+
+    Parameters
+    ----------
+    db : detection store
+    truth_csv : label table (SPEC §2) of the run's deployment; its files count as fully
+        annotated, and only they are judged
+    out_dir : folder for metrics.json, tables and figures (made if missing)
+    run_id : int, optional, the scoring run (default the latest)
+    target_precision : float, 0..1, precision the reported threshold must reach
+    tolerance_s : float, s, widening of truth intervals for matching
+    tracking_uri : str, optional, MLflow store holding the model's training run
+        (default ``MLFLOW_TRACKING_URI``, else ``./mlflow.db`` where it exists)
+    complete_truth : bool
+        The truth table annotates every file of the deployment: the files it does not
+        name hold no call and are judged too (their detections are false positives).
+    n_resamples : int, bootstrap replicates over recording hours
+
+    Returns
+    -------
+    dict, the content of metrics.json plus ``out`` (the folder)
+    """
+    if not 0.0 < target_precision < 1.0:
+        raise InputError(f"--target-precision must be between 0 and 1, got {target_precision:g}")
+    if not tolerance_s >= 0.0:
+        raise InputError(f"--tolerance-s must be >= 0, got {tolerance_s:g}")
+    say = progress or (lambda line: None)
+    t0 = time.perf_counter()
+    con = open_store(db, create=False)
+    try:
+        run_id = latest_run_id(con, run_id)
+        run = con.execute(
+            "SELECT r.*, d.name AS deployment, d.manifest FROM runs r JOIN deployments d "
+            "ON d.deployment_id=r.deployment_id WHERE r.run_id=?",
+            (run_id,),
+        ).fetchone()
+        params = json.loads(run["parameters"])
+        settings = DescriptorSettings(**{k: v for k, v in params["settings"].items() if k != "version"})
+        manifest = Path(params.get("manifest") or run["manifest"])
+        if not manifest.is_file():
+            raise InputError(f"{manifest}: the run's deployment manifest is gone; restore it to evaluate run {run_id}")
+        dep = load_deployment(manifest)
+        truth = read_label_table(truth_csv, [dep])
+        files = {
+            r["name"]: r
+            for r in con.execute(
+                "SELECT f.file_id, f.name, f.start_utc, f.duration_s, rf.status FROM files f "
+                "LEFT JOIN run_files rf ON rf.file_id=f.file_id AND rf.run_id=? WHERE f.deployment_id=?",
+                (run_id, run["deployment_id"]),
+            )
+        }
+        truth_files = sorted({a.file for a in truth} | ({f.name for f in dep.files} if complete_truth else set()))
+        judged = [f for f in truth_files if f in files and files[f]["status"] == "done"]
+        not_scored = [f for f in truth_files if f not in judged]
+        if not judged:
+            raise InputError(
+                f"{truth_csv}: none of its {len(truth_files)} files was scored in run {run_id}; "
+                "score the deployment first or pass the right --run"
+            )
+        for name in not_scored:
+            say(f"evaluate: {name} is in the truth table but was not scored in run {run_id}; left out")
+        dets = _detections(con, run_id, [files[f]["file_id"] for f in judged])
+    finally:
+        con.close()
+
+    classes = [c for c in json.loads(run["classes"]) if c != BACKGROUND]
+    truth = [a for a in truth if a.file in set(judged)]
+    labels_not_in_model = sorted({a.label for a in truth} - set(classes))
+    t_file = [a.file for a in truth]
+    t_label = [a.label for a in truth]
+    t_start = np.array([a.start_s for a in truth])
+    t_end = np.array([a.end_s for a in truth])
+    start_epoch = {f: _epoch_s(files[f]["start_utc"]) for f in judged}
+    t_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(t_file, t_start, strict=True)])
+    d_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(dets["file"], dets["start_s"], strict=True)])
+    d_hour = d_hour.astype(np.int64) if d_hour.size else np.empty(0, dtype=np.int64)
+    effort = _effort_hours([(start_epoch[f], float(files[f]["duration_s"])) for f in judged])
+    hour_index = {h: i for i, h in enumerate(effort)}
+
+    say(f"evaluate: matching {len(dets['label'])} detections of run {run_id} to {len(truth)} truth calls")
+    match = match_detections(
+        list(zip(dets["file"], dets["label"], strict=True)),
+        dets["start_s"],
+        dets["end_s"],
+        dets["confidence"],
+        list(zip(t_file, t_label, strict=True)),
+        t_start,
+        t_end,
+        tolerance_s,
+    )
+
+    say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the energy baseline")
+    t_rl, t_snr = np.full(len(truth), np.nan), np.full(len(truth), np.nan)
+    base = {"file": [], "start_s": [], "end_s": [], "score": []}
+    detector = EnergyDetector()
+    records = {r.name: r for r in dep.files}
+    for f in judged:
+        rec = records[f]
+        idx = [i for i, name in enumerate(t_file) if name == f]
+        if idx:
+            lo = np.array([truth[i].low_hz if truth[i].low_hz is not None else np.nan for i in idx])
+            hi = np.array([truth[i].high_hz if truth[i].high_hz is not None else np.nan for i in idx])
+            rl, snr = call_levels(rec.path, dep.channel, dep.chain, settings, t_start[idx], t_end[idx], lo, hi)
+            t_rl[idx], t_snr[idx] = rl, snr
+        s, e, score = energy_detections(rec.path, dep.channel, dep.chain, settings, detector)
+        base["file"] += [f] * s.size
+        base["start_s"].append(s)
+        base["end_s"].append(e)
+        base["score"].append(score)
+    b_start = np.concatenate(base["start_s"]) if base["start_s"] else np.empty(0)
+    b_end = np.concatenate(base["end_s"]) if base["end_s"] else np.empty(0)
+    b_score = np.concatenate(base["score"]) if base["score"] else np.empty(0)
+
+    per_class: dict[str, Any] = {}
+    curves: dict[str, tuple[PrecisionRecall, PrecisionRecall]] = {}
+    table_rows: list[dict[str, Any]] = []
+    recall_rows: list[dict[str, Any]] = []
+    operating: dict[str, float] = {}
+    for c in classes:
+        in_c = np.asarray(dets["label"]) == c
+        truth_c = np.asarray(t_label) == c
+        n_truth = int(truth_c.sum())
+        curve = precision_recall(dets["confidence"][in_c], match[in_c] >= 0, n_truth)
+        points = _curve_points(curve, target_precision)
+        tab = threshold_table(dets["confidence"][in_c], match[in_c] >= 0, n_truth, THRESHOLDS)
+        for k in range(THRESHOLDS.size):
+            table_rows.append(
+                {"detector": "model", "label": c} | {key: _cell(tab[key][k]) for key in tab} | {"unit": "probability"}
+            )
+        # The operating point: the target-precision threshold where one exists, else F1's.
+        thr = points["threshold_for_target_precision"]
+        thr = thr if thr is not None else points.get("f1_optimal_threshold")
+        thr = float(thr) if thr is not None else 1.0
+        operating[c] = thr
+        above = in_c & (dets["confidence"] >= thr)
+        tp = above & (match >= 0)
+        found = np.zeros(len(truth), dtype=bool)
+        found[match[tp]] = True
+        hi_tp = np.bincount([hour_index[h] for h in d_hour[tp]], minlength=len(effort))
+        hi_det = np.bincount([hour_index[h] for h in d_hour[above]], minlength=len(effort))
+        hi_found = np.bincount([hour_index[h] for h in t_hour[found & truth_c]], minlength=len(effort))
+        hi_calls = np.bincount([hour_index[h] for h in t_hour[truth_c]], minlength=len(effort))
+        ci = bootstrap_over_hours(hi_tp, hi_det, hi_found, hi_calls, n_resamples=n_resamples)
+        n_above, n_tp = int(above.sum()), int(tp.sum())
+        presence = hour_presence(np.array(effort), t_hour[truth_c], d_hour[above])
+        snr_bins = recall_by_bin(t_snr[truth_c], found[truth_c], SNR_EDGES_DB)
+        rl_c = t_rl[truth_c]
+        rl_edges = _level_edges(rl_c)
+        rl_bins = recall_by_bin(rl_c, found[truth_c], rl_edges)
+        for measure, bins in (("snr_db", snr_bins), ("received_level_db", rl_bins)):
+            for k in range(bins["calls"].size):
+                recall_rows.append({"label": c, "measure": measure} | {key: _cell(v[k]) for key, v in bins.items()})
+
+        # The baseline: every energy event is a candidate of this class, judged by the same rule.
+        b_match = match_detections(
+            [(f, c) for f in base["file"]],
+            b_start,
+            b_end,
+            b_score,
+            list(zip(t_file, t_label, strict=True)),
+            t_start,
+            t_end,
+            tolerance_s,
+        )
+        b_curve = precision_recall(b_score, b_match >= 0, n_truth)
+        b_points = _curve_points(b_curve, target_precision)
+        b_tab = threshold_table(b_score, b_match >= 0, n_truth, np.arange(3.0, 30.1, 1.0))
+        for k in range(b_tab["threshold"].size):
+            table_rows.append(
+                {"detector": "baseline", "label": c} | {key: _cell(b_tab[key][k]) for key in b_tab} | {"unit": "dB"}
+            )
+        curves[c] = (curve, b_curve)
+        per_class[c] = {
+            "truth_calls": n_truth,
+            "detections": int(in_c.sum()),
+            "average_precision": _finite(average_precision(curve)),
+        } | {k: _finite(v) if isinstance(v, float) else v for k, v in points.items()}
+        per_class[c] |= {
+            "operating_threshold": thr,
+            "operating": {
+                "detections": n_above,
+                "true_positives": n_tp,
+                "precision": _finite(n_tp / n_above) if n_above else None,
+                "recall": _finite(found[truth_c].sum() / n_truth) if n_truth else None,
+                "precision_ci95": [_finite(x) for x in ci["precision"]],
+                "recall_ci95": [_finite(x) for x in ci["recall"]],
+            },
+            "hour_presence": {k: _finite(v) if isinstance(v, float) else v for k, v in presence.items()},
+            "baseline": {
+                "average_precision": _finite(average_precision(b_curve)),
+                "events": int(b_score.size),
+                "threshold_for_target_precision_db": b_points["threshold_for_target_precision"],
+                "recall_at_target_precision": b_points["recall_at_target_precision"],
+                "f1_at_optimal": b_points["f1_at_optimal"],
+            },
+        }
+
+    confusion_labels, confusion = _confusion(dets, operating, t_file, t_label, t_start, t_end, tolerance_s, classes)
+    metrics = {
+        "run_id": run_id,
+        "deployment": run["deployment"],
+        "model_sha256": run["model_sha256"],
+        "truth": str(Path(truth_csv).resolve()),
+        "complete_truth": complete_truth,
+        "files_judged": len(judged),
+        "files_not_scored": not_scored,
+        "recorded_hours": round(sum(float(files[f]["duration_s"]) for f in judged) / 3600.0, 4),
+        "effort_hours": len(effort),
+        "tolerance_s": tolerance_s,
+        "target_precision": target_precision,
+        "bootstrap": {"unit": "recording hour", "resamples": n_resamples, "interval": "percentile, 95 %"},
+        "baseline_detector": {
+            "kind": "band-limited energy against a running floor",
+            "band_hz": [settings.low_hz, settings.high_hz],
+            "floor": f"{settings.noise_percentile:g}th percentile over {settings.noise_span_s:g} s",
+        }
+        | asdict(detector),
+        "labels_not_in_model": labels_not_in_model,
+        "classes": per_class,
+        "confusion": {"labels": confusion_labels, "counts": confusion.tolist()},
+        "caution": CAUTION,
+        "seconds": round(time.perf_counter() - t0, 1),
+    }
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n")
+    _write_csv(out / "thresholds.csv", table_rows)
+    _write_csv(out / "recall_by_level.csv", recall_rows)
+    _write_matches(out / "matches.csv", dets, match, truth)
+    figures = _figures(out, curves, per_class, recall_rows, confusion_labels, confusion)
+    logged = _log_to_mlflow(run["model_sha256"], run_id, out, metrics, tracking_uri)
+    if logged:
+        metrics["mlflow_run_id"] = logged
+        (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n")
+    return metrics | {"out": str(out), "figures": [str(p) for p in figures]}
+
+
+def _cell(v: Any) -> Any:
+    if isinstance(v, (np.integer, int)):
+        return int(v)
+    v = float(v)
+    return "" if not math.isfinite(v) else round(v, 6)
+
+
+def _level_edges(values: np.ndarray) -> np.ndarray:
+    ok = values[np.isfinite(values)]
+    if ok.size == 0:
+        return np.array([0.0, LEVEL_BIN_DB])
+    lo = np.floor(ok.min() / LEVEL_BIN_DB) * LEVEL_BIN_DB
+    hi = np.ceil(ok.max() / LEVEL_BIN_DB) * LEVEL_BIN_DB
+    return np.arange(lo, max(hi, lo + LEVEL_BIN_DB) + 0.5 * LEVEL_BIN_DB, LEVEL_BIN_DB)
+
+
+def _effort_hours(spans: list[tuple[float, float]]) -> list[int]:
+    """Clock hours (since the epoch) that hold any recording."""
+    hours: set[int] = set()
+    for start, duration in spans:
+        if duration <= 0:
+            continue
+        hours.update(range(int(start // 3600), int(math.ceil((start + duration) / 3600))))
+    return sorted(hours)
+
+
+def _detections(con, run_id: int, file_ids: list[int]) -> dict[str, Any]:
+    rows: list[Any] = []
+    for a in range(0, len(file_ids), 500):
+        part = file_ids[a : a + 500]
+        rows += con.execute(
+            "SELECT d.detection_id, f.name, d.start_s, d.end_s, d.label, d.confidence FROM detections d "
+            f"JOIN files f ON f.file_id=d.file_id WHERE d.run_id=? AND d.superseded=0 "
+            f"AND d.file_id IN ({','.join('?' * len(part))}) ORDER BY d.detection_id",
+            (run_id, *part),
+        ).fetchall()
+    return {
+        "detection_id": np.array([r[0] for r in rows], dtype=np.int64),
+        "file": [r[1] for r in rows],
+        "start_s": np.array([r[2] for r in rows], dtype=float),
+        "end_s": np.array([r[3] for r in rows], dtype=float),
+        "label": [r[4] for r in rows],
+        "confidence": np.array([r[5] for r in rows], dtype=float),
+    }
+
+
+def _confusion(dets, operating, t_file, t_label, t_start, t_end, tolerance_s, classes):
+    """Truth label against the label of the most confident detection over each call.
+
+    Detections count at their class's operating threshold. Rows: truth labels, then
+    'no call' (detections over no truth call); columns: detected labels, then 'not detected'.
+    """
+    truth_labels = sorted(set(t_label) | set(classes))
+    rows = truth_labels + ["no call"]
+    cols = classes + ["not detected"]
+    counts = np.zeros((len(rows), len(cols)), dtype=np.int64)
+    thr = np.array([operating.get(lab, 1.0) for lab in dets["label"]])
+    keep = dets["confidence"] >= thr
+    d_file = np.asarray(dets["file"], dtype=object)[keep]
+    d_label = np.asarray(dets["label"], dtype=object)[keep]
+    d_start, d_end, d_conf = dets["start_s"][keep], dets["end_s"][keep], dets["confidence"][keep]
+    over_any = np.zeros(d_start.size, dtype=bool)
+    by_file: dict[str, np.ndarray] = {}
+    for f in set(d_file):
+        by_file[f] = np.flatnonzero(d_file == f)
+    for i, f in enumerate(t_file):
+        idx = by_file.get(f, np.empty(0, dtype=int))
+        hit = idx[(d_start[idx] < t_end[i] + tolerance_s) & (d_end[idx] > t_start[i] - tolerance_s)]
+        over_any[hit] = True
+        r = rows.index(t_label[i])
+        if hit.size:
+            counts[r, cols.index(d_label[hit[np.argmax(d_conf[hit])]])] += 1
+        else:
+            counts[r, -1] += 1
+    for lab in d_label[~over_any]:
+        counts[-1, cols.index(lab)] += 1
+    return {"rows": rows, "columns": cols}, counts
+
+
+def _write_csv(path: Path, rows: list[dict[str, Any]]) -> None:
+    with open(path, "w", newline="") as fh:
+        if not rows:
+            return
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+
+
+def _write_matches(path: Path, dets: dict[str, Any], match: np.ndarray, truth: list) -> None:
+    """Each detection and the truth row it matched (the truth CSV's row number), for audit."""
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["detection_id", "file", "start_s", "end_s", "label", "confidence", "truth_row"])
+        for k in range(match.size):
+            w.writerow(
+                [
+                    int(dets["detection_id"][k]),
+                    dets["file"][k],
+                    dets["start_s"][k],
+                    dets["end_s"][k],
+                    dets["label"][k],
+                    dets["confidence"][k],
+                    truth[match[k]].row if match[k] >= 0 else "",
+                ]
+            )
+
+
+def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion) -> list[Path]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    paths = []
+    classes = list(curves)
+    n = max(len(classes), 1)
+    fig, axes = plt.subplots(1, n, figsize=(3.6 * n, 3.6), squeeze=False)
+    for ax, c in zip(axes[0], classes, strict=False):
+        model, base = curves[c]
+        ax.step(
+            model.recall, model.precision, where="post", label=f"model AP {per_class[c]['average_precision'] or 0:.2f}"
+        )
+        ax.step(
+            base.recall,
+            base.precision,
+            where="post",
+            linestyle="--",
+            label=f"energy baseline AP {per_class[c]['baseline']['average_precision'] or 0:.2f}",
+        )
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel("recall")
+        ax.set_ylabel("precision")
+        ax.set_title(c)
+        ax.legend(fontsize=7, loc="lower left")
+    fig.tight_layout()
+    paths.append(out / "precision_recall.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+
+    fig, axes = plt.subplots(1, n, figsize=(3.6 * n, 3.4), squeeze=False)
+    for ax, c in zip(axes[0], classes, strict=False):
+        model = curves[c][0]
+        ax.plot(model.threshold, model.precision, label="precision")
+        ax.plot(model.threshold, model.recall, label="recall")
+        ax.axvline(per_class[c]["operating_threshold"], color="0.5", linewidth=0.8)
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel("confidence threshold")
+        ax.set_title(c)
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    paths.append(out / "precision_recall_vs_threshold.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+
+    fig, axes = plt.subplots(1, 2, figsize=(8.0, 3.4))
+    for ax, measure, unit in (
+        (axes[0], "snr_db", "SNR, dB"),
+        (axes[1], "received_level_db", "received level, dB re 1 µPa"),
+    ):
+        for c in classes:
+            rows = [r for r in recall_rows if r["label"] == c and r["measure"] == measure and r["calls"]]
+            if not rows:
+                continue
+            x = [(r["low"] + r["high"]) / 2 for r in rows]
+            y = [r["recall"] for r in rows]
+            err = [[r["recall"] - r["recall_low"] for r in rows], [r["recall_high"] - r["recall"] for r in rows]]
+            ax.errorbar(x, y, yerr=err, marker="o", markersize=3, capsize=2, label=c)
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel(unit)
+        ax.set_ylabel("recall at the operating threshold")
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    paths.append(out / "recall_vs_level.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+
+    fig, ax = plt.subplots(
+        figsize=(1.2 + 0.9 * len(confusion_labels["columns"]), 1.2 + 0.6 * len(confusion_labels["rows"]))
+    )
+    ax.imshow(np.log1p(confusion), cmap="Greys")
+    ax.set_xticks(range(len(confusion_labels["columns"])), confusion_labels["columns"], rotation=40, ha="right")
+    ax.set_yticks(range(len(confusion_labels["rows"])), confusion_labels["rows"])
+    for i in range(confusion.shape[0]):
+        for j in range(confusion.shape[1]):
+            ax.text(j, i, str(confusion[i, j]), ha="center", va="center", fontsize=8, color="tab:red")
+    ax.set_xlabel("detected as (operating thresholds)")
+    ax.set_ylabel("truth")
+    fig.tight_layout()
+    paths.append(out / "confusion.png")
+    fig.savefig(paths[-1], dpi=110)
+    plt.close(fig)
+    return paths
+
+
+def _log_to_mlflow(model_sha256: str, run_id: int, out: Path, metrics: dict, tracking_uri: str | None) -> str | None:
+    """Log the evaluation to the training run of this model, where that run can be found."""
+    uri = tracking_uri or os.environ.get("MLFLOW_TRACKING_URI")
+    if uri is None and Path("mlflow.db").is_file():
+        uri = "sqlite:///mlflow.db"
+    if uri is None:
+        return None
+    import logging
+
+    import mlflow
+
+    logging.getLogger("mlflow").setLevel(logging.WARNING)
+    mlflow.set_tracking_uri(uri)
+    try:
+        found = mlflow.search_runs(
+            search_all_experiments=True,
+            filter_string=f"tags.`callsieve.model_sha256` = '{model_sha256}'",
+            output_format="list",
+        )
+    except Exception:  # an unreachable or foreign store: the files on disk are the record
+        return None
+    if not found:
+        return None
+    train_run = found[0].info.run_id
+    values = {}
+    for c, m in metrics["classes"].items():
+        for key in ("average_precision", "recall_at_target_precision", "threshold_for_target_precision"):
+            if m.get(key) is not None:
+                values[f"eval_{key}.{c}"] = m[key]
+        if m["baseline"]["average_precision"] is not None:
+            values[f"eval_baseline_average_precision.{c}"] = m["baseline"]["average_precision"]
+    with mlflow.start_run(run_id=train_run):
+        mlflow.log_metrics(values, step=run_id)
+        mlflow.log_artifacts(str(out), artifact_path=f"evaluation/scoring-run-{run_id}")
+    return train_run
+
+
+def format_evaluation(metrics: dict[str, Any]) -> str:
+    """The short summary of an evaluation, for the terminal."""
+    lines = [
+        f"Evaluation of scoring run {metrics['run_id']} ({metrics['deployment']}): {metrics['files_judged']} files, "
+        f"{metrics['recorded_hours']:.2f} h, {metrics['effort_hours']} hours with effort; "
+        f"match tolerance {metrics['tolerance_s']:g} s",
+        f"{'label':<14} {'calls':>6} {'AP model':>9} {'AP energy':>10} "
+        f"{'thr@P' + format(metrics['target_precision'], 'g'):>9} {'recall (95% CI)':>22} {'hours P/R':>11}",
+    ]
+    for c, m in metrics["classes"].items():
+        op = m["operating"]
+        rec = op["recall"]
+        ci = op["recall_ci95"]
+        rec_txt = "-" if rec is None else f"{rec:.2f} ({ci[0] or 0:.2f}-{ci[1] or 0:.2f})"
+        thr = m["threshold_for_target_precision"]
+        hp = m["hour_presence"]
+        hours = f"{hp['precision'] or 0:.2f}/{hp['recall'] or 0:.2f}"
+        lines.append(
+            f"{c:<14} {m['truth_calls']:>6} {m['average_precision'] or 0:>9.3f} "
+            f"{m['baseline']['average_precision'] or 0:>10.3f} {'none' if thr is None else format(thr, '.2f'):>9} "
+            f"{rec_txt:>22} {hours:>11}"
+        )
+    if metrics["labels_not_in_model"]:
+        lines.append("truth labels the model does not know: " + ", ".join(metrics["labels_not_in_model"]))
+    if metrics.get("mlflow_run_id"):
+        lines.append(f"logged to MLflow run {metrics['mlflow_run_id']}")
+    lines.append(CAUTION)
+    return "\n".join(lines)
