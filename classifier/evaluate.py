@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 from callsieve.features.descriptors import DescriptorSettings
+from callsieve.features.streaming import AudioReadError
 
 from .baseline import EnergyDetector, call_levels, energy_detections
 from .deployment import load_deployment
@@ -155,7 +156,10 @@ def evaluate(
         if not manifest.is_file():
             raise InputError(f"{manifest}: the run's deployment manifest is gone; restore it to evaluate run {run_id}")
         dep = load_deployment(manifest)
-        truth = read_label_table(truth_csv, [dep])
+        unreadable: list[tuple[str, str]] = []
+        truth = read_label_table(truth_csv, [dep], unreadable)
+        for name, error in unreadable:
+            say(f"evaluate: {name} cannot be read ({error}); its truth rows are left out")
         files = {
             r["name"]: r
             for r in con.execute(
@@ -180,15 +184,35 @@ def evaluate(
 
     classes = [c for c in json.loads(run["classes"]) if c != BACKGROUND]
     truth = [a for a in truth if a.file in set(judged)]
+    say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the energy baseline")
+    detector = EnergyDetector()
+    audio = _audio_pass(dep, judged, truth, settings, detector, say)
+    if audio["failed"]:
+        # A file that cannot be read now is left out whole: its calls, detections and effort.
+        judged = [f for f in judged if f not in audio["failed"]]
+        keep = [i for i, a in enumerate(truth) if a.file not in audio["failed"]]
+        truth = [truth[i] for i in keep]
+        t_rl, t_snr = audio["received_level_db"][keep], audio["snr_db"][keep]
+        ok = np.array([f not in audio["failed"] for f in dets["file"]], dtype=bool)
+        dets = {
+            k: (v[ok] if isinstance(v, np.ndarray) else [x for x, o in zip(v, ok, strict=True) if o])
+            for k, v in dets.items()
+        }
+    else:
+        t_rl, t_snr = audio["received_level_db"], audio["snr_db"]
+    if not judged:
+        raise InputError(f"{truth_csv}: none of its files can be read now; check the deployment's audio")
+    b_file, b_start, b_end, b_score = audio["baseline"]
     labels_not_in_model = sorted({a.label for a in truth} - set(classes))
     t_file = [a.file for a in truth]
     t_label = [a.label for a in truth]
     t_start = np.array([a.start_s for a in truth])
     t_end = np.array([a.end_s for a in truth])
     start_epoch = {f: _epoch_s(files[f]["start_utc"]) for f in judged}
-    t_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(t_file, t_start, strict=True)])
-    d_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(dets["file"], dets["start_s"], strict=True)])
-    d_hour = d_hour.astype(np.int64) if d_hour.size else np.empty(0, dtype=np.int64)
+    t_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(t_file, t_start, strict=True)], dtype=np.int64)
+    d_hour = np.array(
+        [int((start_epoch[f] + s) // 3600) for f, s in zip(dets["file"], dets["start_s"], strict=True)], dtype=np.int64
+    )
     effort = _effort_hours([(start_epoch[f], float(files[f]["duration_s"])) for f in judged])
     hour_index = {h: i for i, h in enumerate(effort)}
 
@@ -203,28 +227,6 @@ def evaluate(
         t_end,
         tolerance_s,
     )
-
-    say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the energy baseline")
-    t_rl, t_snr = np.full(len(truth), np.nan), np.full(len(truth), np.nan)
-    base = {"file": [], "start_s": [], "end_s": [], "score": []}
-    detector = EnergyDetector()
-    records = {r.name: r for r in dep.files}
-    for f in judged:
-        rec = records[f]
-        idx = [i for i, name in enumerate(t_file) if name == f]
-        if idx:
-            lo = np.array([truth[i].low_hz if truth[i].low_hz is not None else np.nan for i in idx])
-            hi = np.array([truth[i].high_hz if truth[i].high_hz is not None else np.nan for i in idx])
-            rl, snr = call_levels(rec.path, dep.channel, dep.chain, settings, t_start[idx], t_end[idx], lo, hi)
-            t_rl[idx], t_snr[idx] = rl, snr
-        s, e, score = energy_detections(rec.path, dep.channel, dep.chain, settings, detector)
-        base["file"] += [f] * s.size
-        base["start_s"].append(s)
-        base["end_s"].append(e)
-        base["score"].append(score)
-    b_start = np.concatenate(base["start_s"]) if base["start_s"] else np.empty(0)
-    b_end = np.concatenate(base["end_s"]) if base["end_s"] else np.empty(0)
-    b_score = np.concatenate(base["score"]) if base["score"] else np.empty(0)
 
     per_class: dict[str, Any] = {}
     curves: dict[str, tuple[PrecisionRecall, PrecisionRecall]] = {}
@@ -268,7 +270,7 @@ def evaluate(
 
         # The baseline: every energy event is a candidate of this class, judged by the same rule.
         b_match = match_detections(
-            [(f, c) for f in base["file"]],
+            [(f, c) for f in b_file],
             b_start,
             b_end,
             b_score,
@@ -319,6 +321,7 @@ def evaluate(
         "complete_truth": complete_truth,
         "files_judged": len(judged),
         "files_not_scored": not_scored,
+        "files_unreadable": sorted({n for n, _ in unreadable} | audio["failed"]),
         "recorded_hours": round(sum(float(files[f]["duration_s"]) for f in judged) / 3600.0, 4),
         "effort_hours": len(effort),
         "tolerance_s": tolerance_s,
@@ -348,6 +351,47 @@ def evaluate(
         metrics["mlflow_run_id"] = logged
         (out / "metrics.json").write_text(json.dumps(metrics, indent=2) + "\n")
     return metrics | {"out": str(out), "figures": [str(p) for p in figures]}
+
+
+def _audio_pass(dep, judged: list[str], truth: list, settings, detector: EnergyDetector, say) -> dict[str, Any]:
+    """Levels of the truth calls and the baseline's events, file by file.
+
+    Returns ``received_level_db`` and ``snr_db`` (per truth call, in ``truth``'s order),
+    ``baseline`` (file, start_s, end_s, score) and ``failed`` (files unreadable now).
+    """
+    rl_all, snr_all = np.full(len(truth), np.nan), np.full(len(truth), np.nan)
+    calls_in: dict[str, list[int]] = {}
+    for i, a in enumerate(truth):
+        calls_in.setdefault(a.file, []).append(i)
+    b_file: list[str] = []
+    b_parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+    failed: set[str] = set()
+    records = {r.name: r for r in dep.files}
+    for f in judged:
+        rec = records.get(f)
+        if rec is None:
+            failed.add(f)
+            say(f"evaluate: {f} is no longer in the deployment's audio folder; left out")
+            continue
+        idx = calls_in.get(f, [])
+        try:
+            if idx:
+                start = np.array([truth[i].start_s for i in idx])
+                end = np.array([truth[i].end_s for i in idx])
+                lo = np.array([np.nan if truth[i].low_hz is None else truth[i].low_hz for i in idx])
+                hi = np.array([np.nan if truth[i].high_hz is None else truth[i].high_hz for i in idx])
+                rl, snr = call_levels(rec.path, dep.channel, dep.chain, settings, start, end, lo, hi)
+            events = energy_detections(rec.path, dep.channel, dep.chain, settings, detector)
+        except AudioReadError as exc:
+            failed.add(f)
+            say(f"evaluate: {exc}; left out")
+            continue
+        if idx:
+            rl_all[idx], snr_all[idx] = rl, snr
+        b_file += [f] * events[0].size
+        b_parts.append(events)
+    cat = [np.concatenate([p[k] for p in b_parts]) if b_parts else np.empty(0) for k in range(3)]
+    return {"received_level_db": rl_all, "snr_db": snr_all, "baseline": (b_file, *cat), "failed": failed}
 
 
 def _cell(v: Any) -> Any:

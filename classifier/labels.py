@@ -49,7 +49,9 @@ def _float(row: dict, key: str, where: str) -> float:
     return value
 
 
-def read_label_table(path: str | Path, deployments: list[Deployment]) -> list[Annotation]:
+def read_label_table(
+    path: str | Path, deployments: list[Deployment], unreadable: list[tuple[str, str]] | None = None
+) -> list[Annotation]:
     """Read and check a label table against the deployments it describes.
 
     Parameters
@@ -58,6 +60,9 @@ def read_label_table(path: str | Path, deployments: list[Deployment]) -> list[An
         deployment]; other columns are kept out of the way
     deployments : list of Deployment
         With more than one, the table needs a ``deployment`` column naming each row's.
+    unreadable : list, optional
+        Where given, rows in files the deployment could not read are left out and each
+        such file is appended once as (file, error); otherwise such a row is refused.
 
     Returns
     -------
@@ -123,6 +128,11 @@ def read_label_table(path: str | Path, deployments: list[Deployment]) -> list[An
             if not end > start:
                 raise InputError(f"{where}: end_s {end:g} is not after start_s {start:g}")
             rec = files[dep_name][name]
+            if rec is None and unreadable is not None:
+                error = next(x.error for x in by_name[dep_name].faults if x.name == name)
+                if (name, error) not in unreadable:
+                    unreadable.append((name, error))
+                continue
             if rec is None:
                 raise InputError(
                     f"{where}: file {name!r} cannot be read "

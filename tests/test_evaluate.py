@@ -95,3 +95,24 @@ def test_bad_calls_are_refused_with_exit_2(labelled, reference, tmp_path, capsys
     bad.write_text("file,start_s,end_s,label\nnot-there.wav,1,2,up\n")
     assert main(["evaluate", str(db), "--truth", str(bad), "--out", out, "--quiet"]) == 2
     assert "not-there.wav" in capsys.readouterr().err
+
+
+def test_a_file_unreadable_since_scoring_is_left_out_not_fatal(labelled, sweep_model, tmp_path, capsys):
+    import shutil
+
+    from callsieve.classifier.scoring import score_deployment
+
+    manifest, labels, _ = labelled
+    site = tmp_path / "site"
+    shutil.copytree(manifest.parent, site)
+    db = tmp_path / "s.db"
+    score_deployment(sweep_model, site / "manifest.toml", db)
+    victim = sorted((site / "audio").glob("*.wav"))[2]
+    victim.write_bytes(b"not audio any more")
+    out = tmp_path / "e"
+    assert main(["evaluate", str(db), "--truth", str(labels), "--out", str(out)]) == 0
+    assert victim.name in capsys.readouterr().err
+    m = json.loads((out / "metrics.json").read_text())
+    assert m["files_unreadable"] == [victim.name] and m["files_judged"] == 5
+    # Its 25 calls are not counted as misses.
+    assert sum(c["truth_calls"] for c in m["classes"].values()) == 125
