@@ -11,6 +11,8 @@ Run: python benchmarks/score_throughput.py [--folder /tmp/cs-bench] [--hours 24]
    process. Prints the ratio and hours of audio per second.
 4. Peak RSS of scoring a 12-hour file against a 1-hour file (2 kHz).
 5. Wall time with 2 processes against 1 on the multi-file 2 kHz deployment.
+
+Each timing runs `--repeat` times (alternating with its counterpart); the fastest counts.
 """
 
 from __future__ import annotations
@@ -117,6 +119,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--folder", type=Path, default=Path("/tmp/cs-bench"))
     parser.add_argument("--hours", type=int, default=24)
+    parser.add_argument("--repeat", type=int, default=2, help="runs of each timing; the fastest counts")
     parser.add_argument("--job", nargs="+", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.job:
@@ -140,8 +143,14 @@ def main() -> None:
     results = {}
     for name, rate, hours in (("2kHz", 2000, args.hours), ("48kHz", 48000, 2)):
         manifest = write_deployment(folder / f"deploy-{name}", rate, hours, 1.0, seed=rate)
-        floor = _run(["--job", "floor", str(manifest), str(model)])
-        score = _run(["--job", "score", str(manifest), str(model), str(folder / f"{name}.db"), "1"])
+        # Floor and score alternate, and the fastest of each counts: a shared machine's
+        # noise only ever adds time.
+        floors, scores = [], []
+        for _ in range(args.repeat):
+            floors.append(_run(["--job", "floor", str(manifest), str(model)]))
+            scores.append(_run(["--job", "score", str(manifest), str(model), str(folder / f"{name}.db"), "1"]))
+        floor = min(floors, key=lambda r: r["seconds"])
+        score = min(scores, key=lambda r: r["seconds"])
         ratio = score["seconds"] / floor["seconds"]
         results[name] = {
             "floor_s": round(floor["seconds"], 1),
@@ -165,8 +174,12 @@ def main() -> None:
         flush=True,
     )
     manifest = folder / "deploy-2kHz" / "manifest.toml"
-    one = _run(["--job", "score", str(manifest), str(model), str(folder / "j1.db"), "1"])
-    two = _run(["--job", "score", str(manifest), str(model), str(folder / "j2.db"), "2"])
+    ones, twos = [], []
+    for _ in range(args.repeat):
+        ones.append(_run(["--job", "score", str(manifest), str(model), str(folder / "j1.db"), "1"]))
+        twos.append(_run(["--job", "score", str(manifest), str(model), str(folder / "j2.db"), "2"]))
+    one = min(ones, key=lambda r: r["seconds"])
+    two = min(twos, key=lambda r: r["seconds"])
     print(
         "scaling",
         {

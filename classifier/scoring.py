@@ -11,11 +11,13 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import pickle
 import platform
 import socket
 import time
 from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -383,6 +385,43 @@ def score_deployment(
         raise InputError(f"--threshold must be in 0..1, got {threshold:g}")
     if jobs < 1:
         raise InputError(f"--jobs must be >= 1, got {jobs}")
+    with _worker_pool(jobs, scheduler) as pool:
+        return _score_deployment(model_path, manifest, db, threshold, jobs, scheduler, block_s, progress, pool)
+
+
+@contextmanager
+def _worker_pool(jobs: int, scheduler: str | None) -> Iterator[Any]:
+    """joblib workers started at once, so their imports overlap with this process's set-up."""
+    if jobs == 1 or scheduler:
+        yield None
+        return
+    from joblib import Parallel, delayed
+
+    with Parallel(n_jobs=jobs, return_as="generator_unordered") as parallel:
+        warm = parallel(delayed(_warm_up)() for _ in range(jobs))
+        try:
+            yield parallel, warm
+        finally:
+            for _ in warm:  # a run with nothing left to score never waited for them
+                pass
+
+
+def _warm_up() -> int:
+    """A task whose only work is loading this module (and its imports) into a worker."""
+    return os.getpid()
+
+
+def _score_deployment(
+    model_path: str | Path,
+    manifest: str | Path,
+    db: str | Path,
+    threshold: float,
+    jobs: int,
+    scheduler: str | None,
+    block_s: float,
+    progress: Callable[[str], None] | None,
+    pool: Any,
+) -> dict[str, Any]:
     model_path = Path(model_path)
     model = load_model(model_path)
     dep = load_deployment(manifest)
@@ -435,7 +474,7 @@ def score_deployment(
     meter = _Progress(len(todo), sum(f.duration_s for f in todo), progress)
     t0 = time.perf_counter()
     stored = 0
-    for result in _results(model, str(model_path.resolve()), dep, todo, threshold, jobs, scheduler, block_s):
+    for result in _results(model, dep, todo, threshold, jobs, scheduler, block_s, pool):
         rec = records[result.name]
         stored += replace_file_result(
             con,
@@ -475,13 +514,13 @@ def score_deployment(
 
 def _results(
     model: CallModel,
-    model_path: str,
     dep: Deployment,
     todo: list,
     threshold: float,
     jobs: int,
     scheduler: str | None,
     block_s: float,
+    pool: Any = None,
 ) -> Iterator[FileResult]:
     context = _continuity(dep)
     args = [(f.path, f.name, context[f.name]) for f in todo]
@@ -512,15 +551,16 @@ def _results(
             yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s, None, True, *ctx)
         return
     # Each worker gets its share of the cores for BLAS/OpenMP, so they do not oversubscribe.
-    import os
-
-    from joblib import Parallel, delayed
+    from joblib import delayed
 
     threads = max((os.cpu_count() or 1) // jobs, 1)
+    parallel, warm = pool
+    for _ in warm:  # the workers' start-up, begun before the model and manifest were read
+        pass
     # The model travels with each task as bytes this process pickled once (a few MB);
     # each worker unpickles it once, in milliseconds, and never reads the model file.
     blob = pickle.dumps(model, protocol=pickle.HIGHEST_PROTOCOL)
-    yield from Parallel(n_jobs=jobs, return_as="generator_unordered")(
+    yield from parallel(
         delayed(_score_file_with_model_bytes)(
             blob, model.content_sha256, p, n, dep.chain, dep.channel, threshold, block_s, threads, True, *ctx
         )
