@@ -38,6 +38,7 @@ from .evaluation import (
 )
 from .export import CAUTION
 from .labels import BACKGROUND, read_label_table
+from .plots import confusion_figure, pyplot
 from .store import latest_run_id, open_store
 
 __all__ = ["evaluate", "format_evaluation", "METRIC_KEYS", "THRESHOLDS"]
@@ -502,11 +503,7 @@ def _write_matches(path: Path, dets: dict[str, Any], match: np.ndarray, truth: l
 
 
 def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion) -> list[Path]:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    plt = pyplot()
     paths = []
     classes = list(curves)
     n = max(len(classes), 1)
@@ -572,21 +569,17 @@ def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion) -
     fig.savefig(paths[-1], dpi=110)
     plt.close(fig)
 
-    fig, ax = plt.subplots(
-        figsize=(1.2 + 0.9 * len(confusion_labels["columns"]), 1.2 + 0.6 * len(confusion_labels["rows"]))
+    paths.append(
+        confusion_figure(
+            confusion,
+            confusion_labels["rows"],
+            confusion_labels["columns"],
+            "detected as (operating thresholds)",
+            "truth",
+            "Truth calls against detections",
+            out / "confusion.png",
+        )
     )
-    ax.imshow(np.log1p(confusion), cmap="Greys")
-    ax.set_xticks(range(len(confusion_labels["columns"])), confusion_labels["columns"], rotation=40, ha="right")
-    ax.set_yticks(range(len(confusion_labels["rows"])), confusion_labels["rows"])
-    for i in range(confusion.shape[0]):
-        for j in range(confusion.shape[1]):
-            ax.text(j, i, str(confusion[i, j]), ha="center", va="center", fontsize=8, color="tab:red")
-    ax.set_xlabel("detected as (operating thresholds)")
-    ax.set_ylabel("truth")
-    fig.tight_layout()
-    paths.append(out / "confusion.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
     return paths
 
 

@@ -23,30 +23,24 @@ DEFAULT_EXPERIMENT = "callsieve"
 
 
 def _plots(result: Any, folder: Path) -> list[Path]:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
     from sklearn.metrics import precision_recall_curve
 
+    from .plots import confusion_figure, pyplot
+
+    plt = pyplot()
     val = result.validation
     classes = val["classes"]
-    paths = []
-    cm = np.array(val["overall"]["confusion"])
-    fig, ax = plt.subplots(figsize=(5.5, 4.5))
-    ax.imshow(cm, cmap="Blues")
-    ax.set_xticks(range(len(classes)), classes, rotation=40, ha="right")
-    ax.set_yticks(range(len(classes)), classes)
-    for i in range(len(classes)):
-        for j in range(len(classes)):
-            ax.text(j, i, str(cm[i, j]), ha="center", va="center", fontsize=8)
-    ax.set_xlabel("decided class (out of fold)")
-    ax.set_ylabel("labelled class")
-    ax.set_title("Grouped cross-validation: confusion (windows)")
-    fig.tight_layout()
-    paths.append(folder / "confusion_matrix.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
+    paths = [
+        confusion_figure(
+            np.array(val["overall"]["confusion"]),
+            classes,
+            classes,
+            "decided class (out of fold)",
+            "labelled class",
+            "Grouped cross-validation: confusion (windows)",
+            folder / "confusion_matrix.png",
+        )
+    ]
 
     fig, ax = plt.subplots(figsize=(5.5, 4.5))
     oof = result.model.estimator.oof_proba_
