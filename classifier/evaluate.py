@@ -216,6 +216,9 @@ def evaluate(
     )
     effort = _effort_hours([(start_epoch[f], float(files[f]["duration_s"])) for f in judged])
     hour_index = {h: i for i, h in enumerate(effort)}
+    # Position of each call's and each detection's hour among the hours with effort.
+    t_hpos = np.array([hour_index[h] for h in t_hour], dtype=np.int64)
+    d_hpos = np.array([hour_index[h] for h in d_hour], dtype=np.int64)
 
     say(f"evaluate: matching {len(dets['label'])} detections of run {run_id} to {len(truth)} truth calls")
     match = match_detections(
@@ -254,11 +257,13 @@ def evaluate(
         tp = above & (match >= 0)
         found = np.zeros(len(truth), dtype=bool)
         found[match[tp]] = True
-        hi_tp = np.bincount([hour_index[h] for h in d_hour[tp]], minlength=len(effort))
-        hi_det = np.bincount([hour_index[h] for h in d_hour[above]], minlength=len(effort))
-        hi_found = np.bincount([hour_index[h] for h in t_hour[found & truth_c]], minlength=len(effort))
-        hi_calls = np.bincount([hour_index[h] for h in t_hour[truth_c]], minlength=len(effort))
-        ci = bootstrap_over_hours(hi_tp, hi_det, hi_found, hi_calls, n_resamples=n_resamples)
+        ci = bootstrap_over_hours(
+            np.bincount(d_hpos[tp], minlength=len(effort)),
+            np.bincount(d_hpos[above], minlength=len(effort)),
+            np.bincount(t_hpos[found & truth_c], minlength=len(effort)),
+            np.bincount(t_hpos[truth_c], minlength=len(effort)),
+            n_resamples=n_resamples,
+        )
         n_above, n_tp = int(above.sum()), int(tp.sum())
         presence = hour_presence(np.array(effort), t_hour[truth_c], d_hour[above])
         snr_bins = recall_by_bin(t_snr[truth_c], found[truth_c], SNR_EDGES_DB)

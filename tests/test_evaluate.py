@@ -116,3 +116,23 @@ def test_a_file_unreadable_since_scoring_is_left_out_not_fatal(labelled, sweep_m
     assert m["files_unreadable"] == [victim.name] and m["files_judged"] == 5
     # Its 25 calls are not counted as misses.
     assert sum(c["truth_calls"] for c in m["classes"].values()) == 125
+
+
+def test_a_class_without_truth_calls_is_reported_not_fatal(labelled, reference, tmp_path):
+    # Only the up-sweeps as truth: every down-sweep detection is then a false positive of
+    # a class with no call, whose recall and average precision are undefined (null).
+    _, labels, _ = labelled
+    db, _ = reference
+    rows = list(csv.DictReader(open(labels)))
+    truth = tmp_path / "up-only.csv"
+    with open(truth, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(r for r in rows if r["label"] == "up")
+    out = tmp_path / "e"
+    assert main(["evaluate", str(db), "--truth", str(truth), "--out", str(out), "--quiet"]) == 0
+    m = json.loads((out / "metrics.json").read_text())
+    down = m["classes"]["down"]
+    assert down["truth_calls"] == 0 and down["average_precision"] is None
+    assert down["operating"]["recall"] is None and down["detections"] > 0
+    assert m["classes"]["up"]["average_precision"] > 0.8
