@@ -12,6 +12,7 @@ import csv
 import json
 import math
 import os
+import sys
 import time
 from collections.abc import Callable
 from dataclasses import asdict
@@ -179,7 +180,7 @@ def evaluate(
             )
         for name in not_scored:
             say(f"evaluate: {name} is in the truth table but was not scored in run {run_id}; left out")
-        dets = _detections(con, run_id, [files[f]["file_id"] for f in judged])
+        dets = _detections(con, run_id, files, judged)
     finally:
         con.close()
 
@@ -190,15 +191,16 @@ def evaluate(
     audio = _audio_pass(dep, judged, truth, settings, detector, say)
     if audio["failed"]:
         # A file that cannot be read now is left out whole: its calls, detections and effort.
+        judged_before = judged
         judged = [f for f in judged if f not in audio["failed"]]
         keep = [i for i, a in enumerate(truth) if a.file not in audio["failed"]]
         truth = [truth[i] for i in keep]
         t_rl, t_snr = audio["received_level_db"][keep], audio["snr_db"][keep]
-        ok = np.array([f not in audio["failed"] for f in dets["file"]], dtype=bool)
-        dets = {
-            k: (v[ok] if isinstance(v, np.ndarray) else [x for x, o in zip(v, ok, strict=True) if o])
-            for k, v in dets.items()
-        }
+        lost = np.array([f in audio["failed"] for f in judged_before], dtype=bool)
+        ok = ~lost[dets["file_code"]]
+        dets = {k: v[ok] for k, v in dets.items()}
+        # Codes are positions in the judged files, which just lost some.
+        dets["file_code"] = (np.cumsum(~lost) - 1)[dets["file_code"]]
     else:
         t_rl, t_snr = audio["received_level_db"], audio["snr_db"]
     if not judged:
@@ -209,24 +211,31 @@ def evaluate(
     t_label = [a.label for a in truth]
     t_start = np.array([a.start_s for a in truth])
     t_end = np.array([a.end_s for a in truth])
-    start_epoch = {f: _epoch_s(files[f]["start_utc"]) for f in judged}
-    t_hour = np.array([int((start_epoch[f] + s) // 3600) for f, s in zip(t_file, t_start, strict=True)], dtype=np.int64)
-    d_hour = np.array(
-        [int((start_epoch[f] + s) // 3600) for f, s in zip(dets["file"], dets["start_s"], strict=True)], dtype=np.int64
-    )
-    effort = _effort_hours([(start_epoch[f], float(files[f]["duration_s"])) for f in judged])
+    file_code = {f: k for k, f in enumerate(judged)}
+    t_code = np.array([file_code[f] for f in t_file], dtype=np.int64)
+    start_epoch = np.array([_epoch_s(files[f]["start_utc"]) for f in judged])
+    t_hour = ((start_epoch[t_code] + t_start) // 3600).astype(np.int64)
+    d_hour = ((start_epoch[dets["file_code"]] + dets["start_s"]) // 3600).astype(np.int64)
+    effort = _effort_hours([(start_epoch[k], float(files[f]["duration_s"])) for k, f in enumerate(judged)])
     hour_index = {h: i for i, h in enumerate(effort)}
     # Position of each call's and each detection's hour among the hours with effort.
     t_hpos = np.array([hour_index[h] for h in t_hour], dtype=np.int64)
     d_hpos = np.array([hour_index[h] for h in d_hour], dtype=np.int64)
 
     say(f"evaluate: matching {len(dets['label'])} detections of run {run_id} to {len(truth)} truth calls")
+    # Keys of SPEC §6: same file, same label, as one integer per detection and call.
+    label_code = {c: k for k, c in enumerate(dict.fromkeys([*classes, *t_label]))}
+    n_labels = len(label_code)
+    d_label_code = np.array([label_code.get(c, -1) for c in dets["label"]], dtype=np.int64)
+    t_label_code = np.array([label_code[c] for c in t_label], dtype=np.int64)
+    b_code = np.array([file_code[f] for f in b_file], dtype=np.int64)
+    t_key = t_code * n_labels + t_label_code
     match = match_detections(
-        list(zip(dets["file"], dets["label"], strict=True)),
+        dets["file_code"] * n_labels + d_label_code,
         dets["start_s"],
         dets["end_s"],
         dets["confidence"],
-        list(zip(t_file, t_label, strict=True)),
+        t_key,
         t_start,
         t_end,
         tolerance_s,
@@ -238,7 +247,7 @@ def evaluate(
     recall_rows: list[dict[str, Any]] = []
     operating: dict[str, float] = {}
     for c in classes:
-        in_c = np.asarray(dets["label"]) == c
+        in_c = dets["label"] == c
         truth_c = np.asarray(t_label) == c
         n_truth = int(truth_c.sum())
         curve = precision_recall(dets["confidence"][in_c], match[in_c] >= 0, n_truth)
@@ -276,11 +285,11 @@ def evaluate(
 
         # The baseline: every energy event is a candidate of this class, judged by the same rule.
         b_match = match_detections(
-            [(f, c) for f in b_file],
+            b_code * n_labels + label_code[c],
             b_start,
             b_end,
             b_score,
-            list(zip(t_file, t_label, strict=True)),
+            t_key,
             t_start,
             t_end,
             tolerance_s,
@@ -426,23 +435,41 @@ def _effort_hours(spans: list[tuple[float, float]]) -> list[int]:
     return sorted(hours)
 
 
-def _detections(con, run_id: int, file_ids: list[int]) -> dict[str, Any]:
-    rows: list[Any] = []
-    for a in range(0, len(file_ids), 500):
-        part = file_ids[a : a + 500]
-        rows += con.execute(
-            "SELECT d.detection_id, f.name, d.start_s, d.end_s, d.label, d.confidence FROM detections d "
-            f"JOIN files f ON f.file_id=d.file_id WHERE d.run_id=? AND d.superseded=0 "
-            f"AND d.file_id IN ({','.join('?' * len(part))}) ORDER BY d.detection_id",
+def _detections(con, run_id: int, files: dict[str, Any], judged: list[str]) -> dict[str, Any]:
+    """The run's detections in the judged files, as arrays (read in chunks).
+
+    ``file`` and ``label`` are object arrays whose entries share one string per file and
+    per label; ``file_code`` is each detection's position in ``judged``.
+    """
+    code_of = {int(files[f]["file_id"]): k for k, f in enumerate(judged)}
+    names = [sys.intern(f) for f in judged]
+    labels: dict[str, str] = {}
+    cols: dict[str, list] = {k: [] for k in ("detection_id", "file_code", "start_s", "end_s", "label", "confidence")}
+    ids = list(code_of)
+    for a in range(0, len(ids), 500):
+        part = ids[a : a + 500]
+        cur = con.execute(
+            "SELECT detection_id, file_id, start_s, end_s, label, confidence FROM detections "
+            f"WHERE run_id=? AND superseded=0 AND file_id IN ({','.join('?' * len(part))}) ORDER BY detection_id",
             (run_id, *part),
-        ).fetchall()
+        )
+        while rows := cur.fetchmany(100_000):
+            for r in rows:
+                cols["detection_id"].append(r[0])
+                cols["file_code"].append(code_of[r[1]])
+                cols["start_s"].append(r[2])
+                cols["end_s"].append(r[3])
+                cols["label"].append(labels.setdefault(r[4], r[4]))
+                cols["confidence"].append(r[5])
+    file_code = np.array(cols["file_code"], dtype=np.int64)
     return {
-        "detection_id": np.array([r[0] for r in rows], dtype=np.int64),
-        "file": [r[1] for r in rows],
-        "start_s": np.array([r[2] for r in rows], dtype=float),
-        "end_s": np.array([r[3] for r in rows], dtype=float),
-        "label": [r[4] for r in rows],
-        "confidence": np.array([r[5] for r in rows], dtype=float),
+        "detection_id": np.array(cols["detection_id"], dtype=np.int64),
+        "file_code": file_code,
+        "file": np.array(names, dtype=object)[file_code] if file_code.size else np.empty(0, dtype=object),
+        "start_s": np.array(cols["start_s"], dtype=float),
+        "end_s": np.array(cols["end_s"], dtype=float),
+        "label": np.array(cols["label"], dtype=object),
+        "confidence": np.array(cols["confidence"], dtype=float),
     }
 
 

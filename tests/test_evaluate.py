@@ -65,7 +65,9 @@ def test_model_beats_the_energy_baseline_on_up_and_down_sweeps(evaluated):
     _, metrics = evaluated
     for m in metrics["classes"].values():
         assert m["average_precision"] > 0.8
-        assert m["baseline"]["average_precision"] < 0.6
+        # It does find the sweeps (10 dB above the floor at the loudest), just not their
+        # kind: about half of its events are of the other class.
+        assert 0.2 < m["baseline"]["average_precision"] < 0.7
         assert m["average_precision"] > m["baseline"]["average_precision"] + 0.25
 
 
