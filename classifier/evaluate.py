@@ -40,6 +40,7 @@ from .evaluation import (
 from .export import CAUTION
 from .labels import BACKGROUND, read_label_table
 from .plots import confusion_figure, pyplot
+from .scoring import Progress
 from .store import latest_run_id, open_store
 
 __all__ = ["evaluate", "format_evaluation", "METRIC_KEYS", "THRESHOLDS"]
@@ -142,6 +143,8 @@ def evaluate(
         raise InputError(f"--target-precision must be between 0 and 1, got {target_precision:g}")
     if not tolerance_s >= 0.0:
         raise InputError(f"--tolerance-s must be >= 0, got {tolerance_s:g}")
+    if Path(out_dir).exists() and not Path(out_dir).is_dir():
+        raise InputError(f"--out {out_dir}: is a file; give a folder for the evaluation's outputs")
     say = progress or (lambda line: None)
     t0 = time.perf_counter()
     con = open_store(db, create=False)
@@ -382,6 +385,7 @@ def _audio_pass(dep, judged: list[str], truth: list, settings, detector: EnergyD
     b_parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
     failed: set[str] = set()
     records = {r.name: r for r in dep.files}
+    meter = Progress(len(judged), sum(records[f].duration_s for f in judged if f in records), say, "energy events")
     for f in judged:
         rec = records.get(f)
         if rec is None:
@@ -405,6 +409,7 @@ def _audio_pass(dep, judged: list[str], truth: list, settings, detector: EnergyD
             rl_all[idx], snr_all[idx] = rl, snr
         b_file += [f] * events[0].size
         b_parts.append(events)
+        meter.add(rec.duration_s, events[0].size)
     cat = [np.concatenate([p[k] for p in b_parts]) if b_parts else np.empty(0) for k in range(3)]
     return {"received_level_db": rl_all, "snr_db": snr_all, "baseline": (b_file, *cat), "failed": failed}
 

@@ -327,9 +327,16 @@ def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: 
     return int(cur.lastrowid)
 
 
-class _Progress:
-    def __init__(self, total_files: int, total_s: float, say: Callable[[str], None] | None) -> None:
-        self.total_files, self.total_s, self.say = total_files, total_s, say
+class Progress:
+    """Progress lines over files: files and recorded hours done, rate, count, time left.
+
+    At most one line a second (and the last), through ``say``; none when it is None.
+    """
+
+    def __init__(
+        self, total_files: int, total_s: float, say: Callable[[str], None] | None, counted: str = "detections"
+    ) -> None:
+        self.total_files, self.total_s, self.say, self.counted = total_files, total_s, say, counted
         self.files, self.done_s, self.detections, self.t0 = 0, 0.0, 0, time.perf_counter()
         self.last = 0.0
 
@@ -346,7 +353,7 @@ class _Progress:
         left = (self.total_s - self.done_s) / 3600.0 / rate if rate > 0 else float("nan")
         self.say(
             f"{self.files}/{self.total_files} files, {self.done_s / 3600:.2f}/{self.total_s / 3600:.2f} h, "
-            f"{rate:.2f} h/s, {self.detections} detections, about {left:.0f} s left"
+            f"{rate:.2f} h/s, {self.detections} {self.counted}, about {left:.0f} s left"
         )
 
 
@@ -471,7 +478,7 @@ def _score_deployment(
         )
         failed.append({"file": fault.name, "error": fault.error})
     records = {f.name: f for f in todo}
-    meter = _Progress(len(todo), sum(f.duration_s for f in todo), progress)
+    meter = Progress(len(todo), sum(f.duration_s for f in todo), progress)
     t0 = time.perf_counter()
     stored = 0
     for result in _results(model, dep, todo, threshold, jobs, scheduler, block_s, pool):

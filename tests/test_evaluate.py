@@ -93,6 +93,8 @@ def test_bad_calls_are_refused_with_exit_2(labelled, reference, tmp_path, capsys
     assert "no such scoring run" in capsys.readouterr().err
     assert main(["evaluate", str(db), "--truth", str(labels), "--out", out, "--target-precision", "1.5"]) == 2
     assert "--target-precision" in capsys.readouterr().err
+    assert main(["evaluate", str(db), "--truth", str(labels), "--out", str(labels), "--quiet"]) == 2
+    assert "is a file" in capsys.readouterr().err
     bad = tmp_path / "truth.csv"
     bad.write_text("file,start_s,end_s,label\nnot-there.wav,1,2,up\n")
     assert main(["evaluate", str(db), "--truth", str(bad), "--out", out, "--quiet"]) == 2
