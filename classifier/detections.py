@@ -9,7 +9,12 @@ from scipy.signal import find_peaks
 
 from .labels import BACKGROUND
 
-__all__ = ["Candidate", "pick_detections"]
+__all__ = ["Candidate", "pick_detections", "DUPLICATE_OVERLAP"]
+
+# Two peaks of one class whose intervals share more than this fraction of the shorter one
+# are one call seen from two windows: the less confident is dropped (non-maximum
+# suppression; 0.5 as in common practice for overlap criteria).
+DUPLICATE_OVERLAP = 0.5
 
 
 @dataclass(frozen=True)
@@ -53,6 +58,9 @@ def pick_detections(
     (its prominence) is one detection, so two calls a few seconds apart, with a dip
     between them, stay two. A peak is kept only where its class is the most probable
     call class in that window; its time and band are those of that window's trace.
+    Of two peaks of one class whose intervals overlap by more than
+    ``DUPLICATE_OVERLAP`` of the shorter (the same trace seen from two windows), only
+    the more confident is kept.
     """
     out: list[Candidate] = []
     calls = [j for j, c in enumerate(classes) if c != BACKGROUND]
@@ -65,9 +73,9 @@ def pick_detections(
         # Pad with zeros so that a run touching either end of the file still has a peak.
         padded = np.concatenate([[0.0], p, [0.0]])
         peaks, _ = find_peaks(padded, height=floor, prominence=floor / 2.0)
-        for i in peaks - 1:
-            if best_call[i] != j:
-                continue
+        peaks = peaks - 1
+        peaks = peaks[best_call[peaks] == j]
+        for i in _suppress_duplicates(peaks, p, segment_s):
             low, high = band_hz[i]
             out.append(
                 Candidate(
@@ -82,3 +90,23 @@ def pick_detections(
             )
     out.sort(key=lambda c: (c.start_s, c.label))
     return out
+
+
+def _suppress_duplicates(peaks: np.ndarray, p: np.ndarray, segment_s: np.ndarray) -> list[int]:
+    """Peaks left after dropping each one that overlaps a more confident kept peak.
+
+    Overlap is the shared time over the shorter interval; ties in confidence keep the
+    earlier window, so the result does not depend on how the windows were split.
+    """
+    order = peaks[np.lexsort((peaks, -p[peaks]))]
+    kept: list[int] = []
+    for i in order:
+        a, b = segment_s[i]
+        if kept:
+            ka, kb = segment_s[kept, 0], segment_s[kept, 1]
+            shared = np.minimum(b, kb) - np.maximum(a, ka)
+            shorter = np.maximum(np.minimum(b - a, kb - ka), 1e-9)
+            if np.any(shared > DUPLICATE_OVERLAP * shorter):
+                continue
+        kept.append(int(i))
+    return sorted(kept)

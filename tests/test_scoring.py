@@ -64,6 +64,19 @@ def test_pick_detections_keeps_two_nearby_calls_apart():
     assert pick_detections(proba, ["background", "up"], seg, band, 0.96) == []
 
 
+def test_pick_detections_keeps_one_of_two_peaks_on_the_same_trace():
+    # Two peaks (a dip between) whose windows both see the same trace at 10.0-11.2 s and
+    # 10.2-11.2 s: one call, kept once at the more confident peak; a third peak on a
+    # trace that shares only 0.2 s of 1 s with it stays.
+    p = np.array([0.0, 0.6, 0.2, 0.9, 0.1, 0.0, 0.7, 0.0])
+    proba = np.column_stack([1 - p, p])
+    seg = np.array([[0, 1], [10.0, 11.2], [10, 11], [10.2, 11.2], [10, 11], [0, 1], [11.0, 12.0], [0, 1]])
+    band = np.tile([80.0, 160.0], (p.size, 1))
+    dets = pick_detections(proba, ["background", "up"], seg, band, 0.1)
+    assert [d.window for d in dets] == [3, 6]
+    assert [d.start_s for d in dets] == [10.2, 11.0]
+
+
 def test_detections_do_not_depend_on_block_size(labelled, sweep_model):
     manifest, _, _ = labelled
     dep = load_deployment(manifest)
