@@ -75,6 +75,13 @@ def match_detections(
         hi = truth_end_s[t_idx] + tolerance_s
         free = np.ones(t_idx.size, dtype=bool)
         d_idx = np.asarray(d_idx)
+        # Only detections that overlap some widened call can match: found at once with the
+        # calls sorted by start and the running maximum of their ends.
+        by_lo = np.argsort(lo, kind="stable")
+        reach = np.maximum.accumulate(hi[by_lo])
+        before = np.searchsorted(lo[by_lo], det_end_s[d_idx], side="left")  # calls starting before the end
+        can = (before > 0) & (reach[np.maximum(before - 1, 0)] > det_start_s[d_idx])
+        d_idx = d_idx[can]
         order = d_idx[np.lexsort((d_idx, det_start_s[d_idx], -det_confidence[d_idx]))]
         for i in order:
             overlap = np.minimum(det_end_s[i], hi) - np.maximum(det_start_s[i], lo)

@@ -166,3 +166,37 @@ def test_recall_by_bin_counts_each_call_once():
     assert list(r["found"]) == [1, 2, 2]
     assert r["recall"][0] == pytest.approx(1 / 3)
     assert r["calls"].sum() == 7
+
+
+def _brute_force_match(dk, ds, de, dc, tk, ts, te, tol):
+    """SPEC §6 read literally: one detection at a time, over every call."""
+    order = sorted(range(len(dk)), key=lambda i: (-dc[i], ds[i], i))
+    taken, match = set(), [-1] * len(dk)
+    for i in order:
+        best, best_overlap = -1, 0.0
+        for j in sorted(range(len(tk)), key=lambda j: (ts[j], j)):
+            if tk[j] != dk[i] or j in taken:
+                continue
+            overlap = min(de[i], te[j] + tol) - max(ds[i], ts[j] - tol)
+            if overlap > best_overlap:
+                best, best_overlap = j, overlap
+        if best >= 0:
+            match[i] = best
+            taken.add(best)
+    return match
+
+
+def test_matching_equals_the_rule_read_literally_on_random_cases():
+    # Crowded random cases (overlapping calls, nested detections, two files, two labels).
+    rng = np.random.default_rng(11)
+    for _ in range(30):
+        n_t, n_d = rng.integers(1, 25), rng.integers(1, 40)
+        tk = list(rng.integers(0, 4, n_t))
+        ts = rng.uniform(0, 60, n_t)
+        te = ts + rng.uniform(0.2, 4.0, n_t)
+        dk = list(rng.integers(0, 4, n_d))
+        ds = rng.uniform(0, 60, n_d)
+        de = ds + rng.uniform(0.2, 6.0, n_d)
+        dc = np.round(rng.uniform(0, 1, n_d), 1)  # ties in confidence on purpose
+        got = match_detections(dk, ds, de, dc, tk, ts, te, 0.5)
+        assert list(got) == _brute_force_match(dk, ds, de, dc, tk, ts, te, 0.5)
