@@ -25,14 +25,22 @@ def _ap_of(det, truth, tol=0.5):
     return m, curve, average_precision(curve)
 
 
+# REFERENCES §7, second row: y_true [1,0,1,1,0,0,1,0] with descending scores -> AP 0.747024.
+Y = [1, 0, 1, 1, 0, 0, 1, 0]
+CONF = [0.95, 0.90, 0.80, 0.70, 0.60, 0.50, 0.40, 0.30]
+KEY = ("dep", "a.wav", "moan")
+
+
+def _ranked_case():
+    """Detections of CONF, each at its own time; the true ones (Y) have a call under them."""
+    det = [(KEY, 10.0 * i, 10.0 * i + 1.0, c) for i, c in enumerate(CONF)]
+    truth = [(KEY, 10.0 * i + 0.2, 10.0 * i + 1.2) for i, t in enumerate(Y) if t]
+    return det, truth
+
+
 def test_average_precision_equals_sklearn_on_a_ranked_list():
-    # REFERENCES §7, second row: y_true [1,0,1,1,0,0,1,0] with descending scores -> AP 0.747024.
-    y = [1, 0, 1, 1, 0, 0, 1, 0]
-    conf = [0.95, 0.90, 0.80, 0.70, 0.60, 0.50, 0.40, 0.30]
-    key = ("dep", "a.wav", "moan")
-    # Each detection sits at its own time; a true one has a call under it.
-    det = [(key, 10.0 * i, 10.0 * i + 1.0, c) for i, c in enumerate(conf)]
-    truth = [(key, 10.0 * i + 0.2, 10.0 * i + 1.2) for i, t in enumerate(y) if t]
+    y, conf = Y, CONF
+    det, truth = _ranked_case()
     m, curve, ap = _ap_of(det, truth)
     assert list((m >= 0).astype(int)) == y
     assert ap == pytest.approx(average_precision_score(y, conf), abs=1e-12)
@@ -46,11 +54,8 @@ def test_average_precision_equals_sklearn_on_a_ranked_list():
 def test_missed_calls_count_at_every_threshold():
     # Four more calls that no detection reaches: recall can only reach 4/8, and the
     # area is sklearn's AP over the detections scaled by the fraction found (SPEC §6).
-    y = [1, 0, 1, 1, 0, 0, 1, 0]
-    conf = [0.95, 0.90, 0.80, 0.70, 0.60, 0.50, 0.40, 0.30]
-    key = ("dep", "a.wav", "moan")
-    det = [(key, 10.0 * i, 10.0 * i + 1.0, c) for i, c in enumerate(conf)]
-    truth = [(key, 10.0 * i + 0.2, 10.0 * i + 1.2) for i, t in enumerate(y) if t]
+    y, conf, key = Y, CONF, KEY
+    det, truth = _ranked_case()
     truth += [(key, 500.0 + 10 * i, 501.0 + 10 * i) for i in range(4)]
     _, curve, ap = _ap_of(det, truth)
     assert curve.recall.max() == pytest.approx(0.5)
