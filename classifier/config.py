@@ -6,7 +6,6 @@ files in ``configs/`` hold the documented defaults of each model kind.
 
 from __future__ import annotations
 
-import tomllib
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
@@ -14,7 +13,7 @@ from typing import Any
 from callsieve.features._validation import ParameterError
 from callsieve.features.descriptors import DescriptorSettings
 
-from .errors import InputError
+from .errors import InputError, read_toml
 
 __all__ = ["TrainingConfig", "load_training_config", "MODEL_KINDS", "DEFAULT_PARAMS"]
 
@@ -166,13 +165,7 @@ def load_training_config(path: str | Path | None) -> TrainingConfig:
     if path is None:
         return TrainingConfig()
     path = Path(path)
-    try:
-        with open(path, "rb") as fh:
-            doc = tomllib.load(fh)
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such config file") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path}: not valid TOML ({exc})") from None
+    doc = read_toml(path, "config")
     values: dict[str, Any] = {}
     for table, content in doc.items():
         if table not in _TABLES:

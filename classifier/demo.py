@@ -190,24 +190,11 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         lines.append("  at confidence >= 0.5: " + ", ".join(f"{k} {v}" for k, v in sorted(sc["at_0.5"].items())))
         lines.append(f"  detection table {sc['export']}")
     if "evaluation" in summary:
+        from .evaluate import format_evaluation
+
         ev = summary["evaluation"]
-        lines += ["", f"Evaluation against the survey truth (SPEC §6 matching, tolerance {ev['tolerance_s']:g} s)"]
-        lines.append(
-            f"  {'label':<14} {'calls':>5}  {'AP model':>8}  {'AP energy':>9}  "
-            f"{'threshold for precision ' + format(ev['target_precision'], 'g'):>27}  recall there (95% CI by hour)"
-        )
-        for c, m in ev["classes"].items():
-            marker = "  (target)" if c == summary["target_label"] else ""
-            thr = m["threshold_for_target_precision"]
-            thr_txt = "none" if thr is None else format(thr, ".2f")
-            op = m["operating"]
-            ci = op["recall_ci95"]
-            rec = "-" if op["recall"] is None else f"{op['recall']:.2f} ({ci[0] or 0:.2f}-{ci[1] or 0:.2f})"
-            lines.append(
-                f"  {c:<14} {m['truth_calls']:>5}  {m['average_precision'] or 0:>8.3f}  "
-                f"{m['baseline']['average_precision'] or 0:>9.3f}  {thr_txt:>27}  "
-                f"{rec}{marker}"
-            )
+        lines += ["", "Evaluation against the survey truth (SPEC §6 matching; recall with its 95 % CI by hour)"]
+        lines += ["  " + line for line in format_evaluation(ev, summary["target_label"], caution=False).splitlines()]
         lines.append(f"  metrics, tables and figures in {ev['out']}")
     lines += [
         "",

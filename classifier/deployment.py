@@ -11,7 +11,6 @@ from __future__ import annotations
 import csv
 import difflib
 import re
-import tomllib
 from collections import Counter
 from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
@@ -22,7 +21,7 @@ from callsieve.features.calibration import RecordingChain, ResponseCurve
 from callsieve.features.propagation import Seawater
 from callsieve.features.streaming import AudioInfo, AudioReadError, audio_info
 
-from .errors import InputError
+from .errors import InputError, read_toml
 
 __all__ = [
     "Site",
@@ -366,15 +365,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
         file, or a file name without a parseable time.
     """
     path = Path(manifest_path)
-    try:
-        with open(path, "rb") as fh:
-            doc = tomllib.load(fh)
-    except FileNotFoundError:
-        raise InputError(f"{path}: no such manifest file") from None
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror}") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path}: not valid TOML ({exc})") from None
+    doc = read_toml(path, "manifest")
     _check_keys(doc, path)
     base = path.resolve().parent
 

@@ -183,7 +183,6 @@ def evaluate(
             )
         for name in not_scored:
             say(f"evaluate: {name} is in the truth table but was not scored in run {run_id}; left out")
-        dets = _detections(con, run_id, files, judged)
     finally:
         con.close()
 
@@ -192,22 +191,18 @@ def evaluate(
     say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the energy baseline")
     detector = EnergyDetector()
     audio = _audio_pass(dep, judged, truth, settings, detector, say)
-    if audio["failed"]:
-        # A file that cannot be read now is left out whole: its calls, detections and effort.
-        judged_before = judged
-        judged = [f for f in judged if f not in audio["failed"]]
-        keep = [i for i, a in enumerate(truth) if a.file not in audio["failed"]]
-        truth = [truth[i] for i in keep]
-        t_rl, t_snr = audio["received_level_db"][keep], audio["snr_db"][keep]
-        lost = np.array([f in audio["failed"] for f in judged_before], dtype=bool)
-        ok = ~lost[dets["file_code"]]
-        dets = {k: v[ok] for k, v in dets.items()}
-        # Codes are positions in the judged files, which just lost some.
-        dets["file_code"] = (np.cumsum(~lost) - 1)[dets["file_code"]]
-    else:
-        t_rl, t_snr = audio["received_level_db"], audio["snr_db"]
+    # A file that cannot be read now is left out whole: its calls, detections and effort.
+    keep = [i for i, a in enumerate(truth) if a.file not in audio["failed"]]
+    judged = [f for f in judged if f not in audio["failed"]]
+    truth = [truth[i] for i in keep]
+    t_rl, t_snr = audio["received_level_db"][keep], audio["snr_db"][keep]
     if not judged:
         raise InputError(f"{truth_csv}: none of its files can be read now; check the deployment's audio")
+    con = open_store(db, create=False)
+    try:
+        dets = _detections(con, run_id, files, judged)
+    finally:
+        con.close()
     b_file, b_start, b_end, b_score = audio["baseline"]
     labels_not_in_model = sorted({a.label for a in truth} - set(classes))
     t_file = [a.file for a in truth]
@@ -657,8 +652,11 @@ def _log_to_mlflow(model_sha256: str, run_id: int, out: Path, metrics: dict, tra
     return train_run
 
 
-def format_evaluation(metrics: dict[str, Any]) -> str:
-    """The short summary of an evaluation, for the terminal."""
+def format_evaluation(metrics: dict[str, Any], target: str | None = None, caution: bool = True) -> str:
+    """The short summary of an evaluation, for the terminal: model and baseline side by side.
+
+    ``target`` marks that class's row; ``caution`` ends with the usual caution.
+    """
     lines = [
         f"Evaluation of scoring run {metrics['run_id']} ({metrics['deployment']}): {metrics['files_judged']} files, "
         f"{metrics['recorded_hours']:.2f} h, {metrics['effort_hours']} hours with effort; "
@@ -677,11 +675,12 @@ def format_evaluation(metrics: dict[str, Any]) -> str:
         lines.append(
             f"{c:<14} {m['truth_calls']:>6} {m['average_precision'] or 0:>9.3f} "
             f"{m['baseline']['average_precision'] or 0:>10.3f} {'none' if thr is None else format(thr, '.2f'):>9} "
-            f"{rec_txt:>22} {hours:>11}"
+            f"{rec_txt:>22} {hours:>11}" + ("  (target)" if c == target else "")
         )
     if metrics["labels_not_in_model"]:
         lines.append("truth labels the model does not know: " + ", ".join(metrics["labels_not_in_model"]))
     if metrics.get("mlflow_run_id"):
         lines.append(f"logged to MLflow run {metrics['mlflow_run_id']}")
-    lines.append(CAUTION)
+    if caution:
+        lines.append(CAUTION)
     return "\n".join(lines)

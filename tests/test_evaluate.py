@@ -72,17 +72,31 @@ def test_model_beats_the_energy_baseline_on_up_and_down_sweeps(evaluated):
 
 
 def test_tolerance_widens_matching(labelled, reference, tmp_path):
+    # Truth written 1.5 s late (a clock offset): the ~1 s calls no longer overlap their
+    # detections, unless the tolerance bridges the offset.
     _, labels, _ = labelled
     db, _ = reference
-    found = []
+    rows = list(csv.DictReader(open(labels)))
+    for r in rows:
+        r["start_s"], r["end_s"] = f"{float(r['start_s']) + 1.5:.3f}", f"{float(r['end_s']) + 1.5:.3f}"
+    late = tmp_path / "late.csv"
+    with open(late, "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        w.writeheader()
+        w.writerows(rows)
+    found, matched = [], []
     for tol in ("0", "3"):
         out = tmp_path / tol
-        args = ["evaluate", str(db), "--truth", str(labels), "--out", str(out), "--tolerance-s", tol, "--quiet"]
+        args = ["evaluate", str(db), "--truth", str(late), "--out", str(out), "--tolerance-s", tol, "--quiet"]
         assert main(args) == 0
         m = json.loads((out / "metrics.json").read_text())
         found.append(sum(c["operating"]["true_positives"] for c in m["classes"].values()))
+        matched.append(sum(r["truth_row"] != "" for r in csv.DictReader(open(out / "matches.csv"))))
         assert m["tolerance_s"] == float(tol)
     assert found[1] >= found[0]
+    # Over every stored detection: most calls are found only with the wider tolerance.
+    assert matched[0] < 0.5 * matched[1]
+    assert found[1] > found[0]
 
 
 def test_bad_calls_are_refused_with_exit_2(labelled, reference, tmp_path, capsys):
