@@ -3,9 +3,9 @@
 Run: python benchmarks/evaluate_scale.py [--detections 1000000] [--calls 100000] [--files 2000]
 
 Random detections and calls spread over files of one hour, one label: the time of the
-SPEC §6 matching, of the precision-recall curve and average precision, of the threshold
+the matching of docs/evaluation.md, of the precision-recall curve and average precision, of the threshold
 table and of 2,000 bootstrap replicates over the hours. The audio pass of `evaluate`
-(truth-call levels and the energy baseline) costs about what scoring does and is not
+(truth-call levels and the excess baseline) costs about what scoring does and is not
 measured here.
 """
 

@@ -1,4 +1,4 @@
-"""The baseline of every evaluation: a band-limited energy detector over the same files.
+"""The baseline of every evaluation: the floor-excess detector over the same files.
 
 It sees the audio through the model's own grid, band and noise-floor settings, so the
 difference between the two is what the model's descriptors and training add.
@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 from callsieve.features.calibration import RecordingChain
 from callsieve.features.descriptors import DescriptorSettings
-from callsieve.features.energy import band_power_db, energy_events, running_floor_db
+from callsieve.features.excess import band_power_db, excess_events, running_floor_db
 from callsieve.features.noise import percentile_to_mean_db
 from callsieve.features.spectrogram import psd_spectrogram
 from callsieve.features.streaming import AudioReader
@@ -20,36 +20,36 @@ from callsieve.features.streaming import AudioReader
 from .detections import Candidate
 from .scoring import measure_levels
 
-__all__ = ["EnergyDetector", "energy_detections", "call_levels"]
+__all__ = ["ExcessDetector", "excess_detections", "call_levels"]
 
 
 @dataclass(frozen=True)
-class EnergyDetector:
-    """Settings of the band-limited energy detector.
+class ExcessDetector:
+    """Settings of the floor-excess detector (in-band power over its running floor).
 
     Parameters
     ----------
-    onset_db : float, dB, in-band excess over the running floor that starts an event
-    offset_db : float, dB, excess below which an event ends
-    min_duration_s : float, s, shorter events are dropped
-    merge_gap_s : float, s, events closer than this are one
+    start_excess_db : float, dB, excess an event must climb past to exist at all
+    hold_excess_db : float, dB, excess an event keeps while it lasts; below it, it is over
+    shortest_event_s : float, s, an event must last this long to count
+    join_gap_s : float, s, two events with a shorter pause between them are one
     """
 
-    onset_db: float = 3.0
-    offset_db: float = 1.0
-    min_duration_s: float = 0.25
-    merge_gap_s: float = 0.25
+    start_excess_db: float = 3.0
+    hold_excess_db: float = 1.0
+    shortest_event_s: float = 0.25
+    join_gap_s: float = 0.25
 
 
-def energy_detections(
+def excess_detections(
     path: str | Path,
     channel: int,
     chain: RecordingChain,
     settings: DescriptorSettings,
-    detector: EnergyDetector = EnergyDetector(),
+    detector: ExcessDetector = ExcessDetector(),
     block_s: float = 600.0,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Energy-detector events of one file in the band of ``settings``.
+    """Floor-excess events of one file in the band of ``settings``.
 
     The file is read in blocks of ``block_s`` (frames tile the file, so the result does
     not depend on it); the in-band power series of the whole file is small (one value
@@ -82,14 +82,14 @@ def energy_detections(
         settings.noise_stride,
         settings.noise_percentile,
     )
-    return energy_events(
+    return excess_events(
         level - floor,
         grid.frame_start_samples(frames, fs) / fs,
         n_win / fs,
-        detector.onset_db,
-        detector.offset_db,
-        detector.min_duration_s,
-        detector.merge_gap_s,
+        detector.start_excess_db,
+        detector.hold_excess_db,
+        detector.shortest_event_s,
+        detector.join_gap_s,
     )
 
 
@@ -105,7 +105,7 @@ def call_levels(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Received level and SNR of calls in one file, measured as for detections.
 
-    The received level is the band-limited rms SPL of the calibrated waveform over the
+    The received level is the in-band rms SPL of the calibrated waveform over the
     call (dB re 1 µPa); the noise is the running-percentile floor of the PSD over the
     ``settings.noise_span_s`` around the call, summed over the call's band, so these
     SNRs and the detections' are on one scale.

@@ -20,7 +20,7 @@ EXIT_OK, EXIT_FAILED, EXIT_INPUT = 0, 1, 2
 
 
 class _Parser(argparse.ArgumentParser):
-    """argparse, but a wrong call is one line and exit 2 (SPEC §3)."""
+    """argparse, but a wrong call is one line and exit 2 (docs/formats.md, "Exit status")."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
         raise InputError(
@@ -251,10 +251,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=_cmd_export)
 
     p = verbs.add_parser(
-        "evaluate", parents=[common], help="judge a scoring run and an energy baseline against labelled truth"
+        "evaluate", parents=[common], help="judge a scoring run and an excess baseline against labelled truth"
     )
     p.add_argument("db", metavar="DB", help="detection store")
-    p.add_argument("--truth", required=True, metavar="CSV", help="label table of fully annotated files (SPEC §2)")
+    p.add_argument(
+        "--truth", required=True, metavar="CSV", help="label table of fully annotated files (docs/formats.md)"
+    )
     p.add_argument("--out", required=True, metavar="DIR", help="folder for metrics.json, tables and figures")
     p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
     p.add_argument(

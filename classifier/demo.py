@@ -115,12 +115,12 @@ def run_demo(
     summary["scoring"] = scored | {"export": exported["out"], "at_0.5": by_label}
     summary["seconds"]["scoring"] = round(time.perf_counter() - t3, 1)
 
-    # Judge the run and the energy baseline against the survey's truth, which covers
+    # Judge the run and the excess baseline against the survey's truth, which covers
     # every survey file (the scenario knows every call it wrote).
     t4 = time.perf_counter()
     from .evaluate import evaluate
 
-    say(f"demo: evaluating run {scored['run_id']} and the energy baseline against {summary['survey_truth']}")
+    say(f"demo: evaluating run {scored['run_id']} and the excess baseline against {summary['survey_truth']}")
     summary["evaluation"] = evaluate(
         db, summary["survey_truth"], out / "evaluation", complete_truth=True, tracking_uri=tracking_uri
     )
@@ -193,7 +193,10 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         from .evaluate import format_evaluation
 
         ev = summary["evaluation"]
-        lines += ["", "Evaluation against the survey truth (SPEC §6 matching; recall with its 95 % CI by hour)"]
+        lines += [
+            "",
+            "Evaluation against the survey truth (docs/evaluation.md §1 matching; recall with its 95 % CI by hour)",
+        ]
         lines += ["  " + line for line in format_evaluation(ev, summary["target_label"], caution=False).splitlines()]
         lines.append(f"  metrics, tables and figures in {ev['out']}")
     lines += [

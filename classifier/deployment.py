@@ -1,4 +1,4 @@
-"""Deployment manifests (SPEC §1): load, validate, find the files and their times.
+"""Deployment manifests (docs/formats.md): load, validate, find the files and their times.
 
 One manifest describes one recorder at one place for one stretch of time. Loading it
 checks every field, reads the calibration tables, lists the sound files, parses each
@@ -351,7 +351,7 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
 
     Parameters
     ----------
-    manifest_path : str or Path, a TOML file in the SPEC §1 format
+    manifest_path : str or Path, a TOML file in the manifest format of docs/formats.md
 
     Returns
     -------

@@ -1,4 +1,4 @@
-"""`callsieve evaluate`: a scoring run and the energy baseline judged against truth.
+"""`callsieve evaluate`: a scoring run and the excess baseline judged against truth.
 
 Reads the store, the truth table and (for the baseline and the calls' levels) the
 audio; writes ``metrics.json``, CSV tables and figures into the output folder, and,
@@ -24,7 +24,7 @@ import numpy as np
 from callsieve.features.descriptors import DescriptorSettings
 from callsieve.features.streaming import AudioReadError
 
-from .baseline import EnergyDetector, call_levels, energy_detections
+from .baseline import ExcessDetector, call_levels, excess_detections
 from .deployment import load_deployment
 from .errors import InputError
 from .evaluation import (
@@ -117,12 +117,12 @@ def evaluate(
     n_resamples: int = 2000,
     progress: Callable[[str], None] | None = None,
 ) -> dict[str, Any]:
-    """Judge a scoring run and the energy baseline against a truth table (SPEC §6).
+    """Judge a scoring run and the excess baseline against a truth table (docs/evaluation.md).
 
     Parameters
     ----------
     db : detection store
-    truth_csv : label table (SPEC §2) of the run's deployment; its files count as fully
+    truth_csv : label table (docs/formats.md) of the run's deployment; its files count as fully
         annotated, and only they are judged
     out_dir : folder for metrics.json, tables and figures (made if missing)
     run_id : int, optional, the scoring run (default the latest)
@@ -188,8 +188,8 @@ def evaluate(
 
     classes = [c for c in json.loads(run["classes"]) if c != BACKGROUND]
     truth = [a for a in truth if a.file in set(judged)]
-    say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the energy baseline")
-    detector = EnergyDetector()
+    say(f"evaluate: measuring the levels of {len(truth)} truth calls and running the excess baseline")
+    detector = ExcessDetector()
     audio = _audio_pass(dep, judged, truth, settings, detector, say)
     # A file that cannot be read now is left out whole: its calls, detections and effort.
     keep = [i for i, a in enumerate(truth) if a.file not in audio["failed"]]
@@ -221,7 +221,7 @@ def evaluate(
     d_hpos = np.array([hour_index[h] for h in d_hour], dtype=np.int64)
 
     say(f"evaluate: matching {len(dets['label'])} detections of run {run_id} to {len(truth)} truth calls")
-    # Keys of SPEC §6: same file, same label, as one integer per detection and call.
+    # The matching keys: same file, same label, as one integer per detection and call.
     label_code = {c: k for k, c in enumerate(dict.fromkeys([*classes, *t_label]))}
     n_labels = len(label_code)
     d_label_code = np.array([label_code.get(c, -1) for c in dets["label"]], dtype=np.int64)
@@ -341,7 +341,7 @@ def evaluate(
         "target_precision": target_precision,
         "bootstrap": {"unit": "recording hour", "resamples": n_resamples, "interval": "percentile, 95 %"},
         "baseline_detector": {
-            "kind": "band-limited energy against a running floor",
+            "kind": "floor excess: in-band power over its running floor",
             "band_hz": [settings.low_hz, settings.high_hz],
             "floor": f"{settings.noise_percentile:g}th percentile over {settings.noise_span_s:g} s",
         }
@@ -366,7 +366,7 @@ def evaluate(
     return metrics | {"out": str(out), "figures": [str(p) for p in figures]}
 
 
-def _audio_pass(dep, judged: list[str], truth: list, settings, detector: EnergyDetector, say) -> dict[str, Any]:
+def _audio_pass(dep, judged: list[str], truth: list, settings, detector: ExcessDetector, say) -> dict[str, Any]:
     """Levels of the truth calls and the baseline's events, file by file.
 
     Returns ``received_level_db`` and ``snr_db`` (per truth call, in ``truth``'s order),
@@ -395,7 +395,7 @@ def _audio_pass(dep, judged: list[str], truth: list, settings, detector: EnergyD
                 lo = np.array([np.nan if truth[i].low_hz is None else truth[i].low_hz for i in idx])
                 hi = np.array([np.nan if truth[i].high_hz is None else truth[i].high_hz for i in idx])
                 rl, snr = call_levels(rec.path, dep.channel, dep.chain, settings, start, end, lo, hi)
-            events = energy_detections(rec.path, dep.channel, dep.chain, settings, detector)
+            events = excess_detections(rec.path, dep.channel, dep.chain, settings, detector)
         except AudioReadError as exc:
             failed.add(f)
             say(f"evaluate: {exc}; left out")
@@ -550,7 +550,7 @@ def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion) -
             base.precision,
             where="post",
             linestyle="--",
-            label=f"energy baseline AP {per_class[c]['baseline']['average_precision'] or 0:.2f}",
+            label=f"excess baseline AP {per_class[c]['baseline']['average_precision'] or 0:.2f}",
         )
         ax.set_xlim(0, 1)
         ax.set_ylim(0, 1.02)

@@ -1,4 +1,4 @@
-"""Judging detections against truth (SPEC §6), and the figures of merit built on it.
+"""Judging detections against truth (docs/evaluation.md), and the figures of merit built on it.
 
 Pure functions on arrays: matching, average precision, precision-recall curves,
 threshold tables, bootstrap intervals over recording hours, hour presence and recall
@@ -36,7 +36,7 @@ def match_detections(
     truth_end_s: np.ndarray,
     tolerance_s: float = 0.5,
 ) -> np.ndarray:
-    """Match detections to truth calls one-to-one by the rule of SPEC §6.
+    """Match detections to truth calls one-to-one by the matching rule of docs/evaluation.md.
 
     Parameters
     ----------
@@ -241,7 +241,7 @@ def bootstrap_over_hours(
 
 
 def hour_presence(effort_hours: np.ndarray, call_hours: np.ndarray, detection_hours: np.ndarray) -> dict[str, float]:
-    """Hour-presence precision and recall (SPEC §6).
+    """Hour-presence precision and recall (docs/evaluation.md).
 
     Parameters
     ----------

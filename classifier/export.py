@@ -1,4 +1,4 @@
-"""`callsieve export`: the detection table of SPEC §4, as CSV or Parquet, streamed."""
+"""`callsieve export`: the detection table of docs/formats.md, as CSV or Parquet, streamed."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""Label tables (SPEC §2): analysts' annotations, read and checked row by row."""
+"""Label tables (docs/formats.md): analysts' annotations, read and checked row by row."""
 
 from __future__ import annotations
 

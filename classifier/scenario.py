@@ -1,7 +1,7 @@
 """An invented monitoring scenario with known truth: two recorders, calls, noise, ships.
 
 Everything here is made up. An invented survey watches one invented call type, the
-``rising-moan``, at two invented sites with two different recorders:
+``tarsel-upsweep``, at two invented sites with two different recorders:
 
 - ``north-shelf``: the training site. Continuous 30-minute FLAC files, 4 kHz, 24-bit,
   hydrophone and preamplifier responses from CSV tables. Every call is labelled.
@@ -39,7 +39,7 @@ from callsieve.features.synthesis import (
 
 __all__ = ["CallType", "RecorderSite", "CALL_TYPES", "TARGET_LABEL", "demo_sites", "write_scenario"]
 
-TARGET_LABEL = "rising-moan"
+TARGET_LABEL = "tarsel-upsweep"
 SIMULATED_NOTE = "invented scenario: synthetic audio, invented sites, animals and recorders"
 
 
@@ -79,9 +79,9 @@ CALL_TYPES = (
         bouts_per_hour=1.2,
         call_interval_s=25.0,
     ),
-    # Confusers in the same band: the opposite sweep, and a near-flat moan.
+    # Confusers in the same band: the opposite sweep, and a near-flat drone.
     CallType(
-        "falling-moan",
+        "tarsel-downsweep",
         "sweep",
         (150.0, 175.0),
         (70.0, 90.0),
@@ -92,8 +92,8 @@ CALL_TYPES = (
         call_interval_s=45.0,
     ),
     CallType(
-        "flat-moan",
-        "moan",
+        "tarsel-drone",
+        "drone",
         (100.0, 110.0),
         (115.0, 130.0),
         (1.2, 2.2),
@@ -104,7 +104,7 @@ CALL_TYPES = (
     ),
     # A similar upsweep of another animal in the neighbouring band.
     CallType(
-        "high-rise",
+        "pelk-chirp",
         "sweep",
         (300.0, 340.0),
         (430.0, 480.0),

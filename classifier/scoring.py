@@ -77,7 +77,7 @@ def measure_levels(
 ) -> list[tuple[float, float, int]]:
     """Received level (dB re 1 µPa), SNR (dB) and clip flag of each detection.
 
-    The received level is the band-limited rms SPL of the calibrated waveform over the
+    The received level is the in-band rms SPL of the calibrated waveform over the
     detection; the noise is the noise floor's power in the same band at the peak window
     (``noise_psd[c.window]``, µPa²/Hz, on ``frequency_hz``), so SNR = (signal power) /
     (noise power). Detections close in time share one read and one calibration of the
@@ -209,8 +209,8 @@ def _score_file(
 ) -> FileResult:
     settings = model.settings
     names = model.descriptor_names
-    i_lo, i_hi = names.index("contour_min_hz"), names.index("contour_max_hz")
-    i_act = names.index("contour_active_fraction")
+    i_lo, i_hi = names.index("trace_lowest_hz"), names.index("trace_highest_hz")
+    i_act = names.index("trace_cover_fraction")
     i_snr = names.index("snr_db")
     background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
     values, segment, noise_psd, starts = [], [], [], []

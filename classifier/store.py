@@ -10,7 +10,7 @@ Schema (``SCHEMA_VERSION`` 1):
   status (``running`` or ``finished``).
 - ``run_files``: per run and file, ``done`` or ``failed`` with the error, the windows
   scored and detections stored; a scoring run resumes from here.
-- ``detections``: candidate calls, in SPEC §4 terms; ``superseded`` marks detections of
+- ``detections``: candidate calls, the detection table of docs/formats.md; ``superseded`` marks detections of
   a file that changed and was scored again, kept because someone verified them.
 - ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
 """

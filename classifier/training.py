@@ -508,8 +508,8 @@ def train(
 
     Parameters
     ----------
-    manifests : list of manifest paths (SPEC §1)
-    label_tables : list of label tables (SPEC §2)
+    manifests : list of manifest paths (docs/formats.md)
+    label_tables : list of label tables (docs/formats.md)
     out : path of the model file to write
     config_path : training configuration (TOML); None for the defaults
     target : str, optional; a model of this label against everything else

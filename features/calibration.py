@@ -40,7 +40,7 @@ class ResponseCurve:
     Notes
     -----
     Between table points the level is linear in log10(frequency); beyond the ends it is
-    held at the end values (SPEC §1), which also covers 0 Hz.
+    held at the end values (docs/formats.md), which also covers 0 Hz.
     """
 
     frequency_hz: np.ndarray
@@ -187,7 +187,7 @@ def samples_from_pressure(pressure_upa: np.ndarray, sample_rate_hz: float, chain
 
 
 def band_pressure_fir(chain: RecordingChain, sample_rate_hz: float, low_hz: float, high_hz: float) -> np.ndarray:
-    """Linear-phase FIR from sample values to band-limited pressure in µPa.
+    """Linear-phase FIR from sample values to band-passed pressure in µPa.
 
     The gain is the chain's µPa per unit inside [low_hz, high_hz] and falls to zero
     over transitions of a quarter of ``low_hz`` (at least 5 Hz, at most 500 Hz) on

@@ -25,7 +25,7 @@ __all__ = [
 ]
 
 # Bump when any descriptor changes meaning, so old models are refused on new data.
-DESCRIPTOR_VERSION = "1"
+DESCRIPTOR_VERSION = "2"
 _TINY = 1e-30
 
 
@@ -44,7 +44,7 @@ class DescriptorSettings:
     noise_step_s : float, s, time between noise-floor estimates (interpolated between)
     noise_percentile : float, %, percentile of the PSD taken as the noise floor
     n_subbands : int, equal log-width sub-bands of the band
-    contour_false_alarm : float, probability that a frame of pure noise has its
+    trace_false_alarm : float, probability that a frame of pure noise has its
         strongest bin stand above the threshold; the threshold on the excess over the
         noise floor follows from it and the number of bins (see :func:`active_threshold_db`)
     """
@@ -59,7 +59,7 @@ class DescriptorSettings:
     noise_step_s: float = 5.0
     noise_percentile: float = 20.0
     n_subbands: int = 4
-    contour_false_alarm: float = 0.05
+    trace_false_alarm: float = 0.05
 
     def __post_init__(self) -> None:
         for name in (
@@ -81,8 +81,8 @@ class DescriptorSettings:
                 raise ParameterError(f"{name} must be a whole multiple of frame_hop_s ({self.frame_hop_s:g} s)")
         if self.window_s < 1.0 / self.resolution_hz + 2 * self.frame_hop_s:
             raise ParameterError("window_s must hold at least three spectrogram frames")
-        if not 0 < self.contour_false_alarm < 1:
-            raise ParameterError("contour_false_alarm must be in (0, 1)")
+        if not 0 < self.trace_false_alarm < 1:
+            raise ParameterError("trace_false_alarm must be in (0, 1)")
         if not 0 < self.noise_percentile < 100 or self.n_subbands < 1:
             raise ParameterError("noise_percentile must be in (0, 100) and n_subbands >= 1")
 
@@ -126,9 +126,9 @@ def active_threshold_db(settings: DescriptorSettings, n_bins: int) -> float:
 
     The power of noise in one bin of one frame is exponentially distributed about its
     mean, so the largest of n bins exceeds ``ln(n / P_fa)`` times the mean with
-    probability about P_fa (``contour_false_alarm``).
+    probability about P_fa (``trace_false_alarm``).
     """
-    return float(10.0 * np.log10(np.log(n_bins / settings.contour_false_alarm)))
+    return float(10.0 * np.log10(np.log(n_bins / settings.trace_false_alarm)))
 
 
 def subband_edges_hz(settings: DescriptorSettings) -> np.ndarray:
@@ -139,32 +139,36 @@ def subband_edges_hz(settings: DescriptorSettings) -> np.ndarray:
 
 # name, unit, meaning
 _CONTOUR = [
-    ("contour_start_hz", "Hz", "frequency of the dominant trace at its first frame above the noise floor"),
-    ("contour_end_hz", "Hz", "frequency of the dominant trace at its last frame above the noise floor"),
-    ("contour_min_hz", "Hz", "lowest frequency of the trace above the noise floor"),
-    ("contour_max_hz", "Hz", "highest frequency of the trace above the noise floor"),
-    ("contour_median_hz", "Hz", "median frequency of the trace above the noise floor"),
+    ("trace_first_hz", "Hz", "frequency of the dominant trace at its first frame above the noise floor"),
+    ("trace_last_hz", "Hz", "frequency of the dominant trace at its last frame above the noise floor"),
+    ("trace_lowest_hz", "Hz", "lowest frequency of the trace above the noise floor"),
+    ("trace_highest_hz", "Hz", "highest frequency of the trace above the noise floor"),
+    ("trace_median_hz", "Hz", "median frequency of the trace above the noise floor"),
     (
-        "contour_slope_hz_per_s",
+        "trace_sweep_rate_hz_per_s",
         "Hz/s",
         "slope of a weighted quadratic fit to the trace, at the window centre",
     ),
-    ("contour_curvature_hz_per_s2", "Hz/s²", "second derivative of that fit"),
-    ("contour_inflections", "count", "sign changes of the trace's second difference (over 1 bin)"),
-    ("contour_active_fraction", "1", "fraction of the window's frames whose trace stands above the floor"),
-    ("contour_active_duration_s", "s", "time the trace stands above the noise floor"),
-    ("contour_spread_hz", "Hz", "rms deviation of the trace from its quadratic fit"),
-    ("contour_excess_db", "dB", "median excess of the trace over the noise floor, frames above it"),
+    ("trace_sweep_change_hz_per_s2", "Hz/s²", "second derivative of that fit"),
+    ("trace_turns", "count", "sign changes of the trace's second difference (over 1 bin)"),
+    ("trace_cover_fraction", "1", "fraction of the window's frames whose trace stands above the floor"),
+    ("trace_duration_s", "s", "time the trace stands above the noise floor"),
+    ("trace_fit_rms_hz", "Hz", "rms deviation of the trace from its quadratic fit"),
+    ("trace_excess_db", "dB", "median excess of the trace over the noise floor, frames above it"),
 ]
 _ENERGY = [
     ("band_level_db", "dB re 1 µPa", "rms SPL in the analysis band over the window"),
     ("noise_level_db", "dB re 1 µPa", "band level of the noise floor over the window"),
     ("snr_db", "dB", "in-band signal-to-noise ratio: (band power − noise power) / noise power"),
-    ("peak_to_peak_db", "dB re 1 µPa", "peak-to-peak SPL of the band-limited waveform"),
-    ("spectral_entropy", "1", "Shannon entropy of the window's mean in-band PSD, over its maximum"),
-    ("spectral_centroid_hz", "Hz", "centroid of the PSD excess over the noise floor"),
-    ("bandwidth_10db_hz", "Hz", "width of the run around the excess peak within 10 dB of it"),
-    ("energy_duration_90_s", "s", "time holding the central 90 % of the in-band excess energy"),
+    ("peak_to_peak_db", "dB re 1 µPa", "peak-to-peak SPL of the band-passed waveform"),
+    ("psd_evenness", "1", "Shannon entropy of the window's mean in-band PSD, over its maximum"),
+    ("excess_centroid_hz", "Hz", "centroid of the PSD excess over the noise floor"),
+    ("peak_run_width_hz", "Hz", "width of the run around the excess peak within 10 dB of it"),
+    (
+        "excess_core_duration_s",
+        "s",
+        "time over which the window's in-band excess energy grows from 5 % to 95 % of its total",
+    ),
 ]
 
 
@@ -332,9 +336,9 @@ def describe_windows(
         (f[:, None] * excess_spec).sum(axis=0) / np.maximum(total_excess, _TINY),
         0.5 * (f[0] + f[-1]),
     )
-    bandwidth = _bandwidth_10db(excess_spec.T, df)
+    bandwidth = _peak_run_width(excess_spec.T, df)
     frame_excess = np.maximum(band_p - band_n, 0.0)
-    duration90 = _energy_duration(_window_view(frame_excess, first, n_w), hop)
+    duration90 = _excess_core_duration(_window_view(frame_excess, first, n_w), hop)
 
     edges = subband_edges_hz(settings)
     sub = []
@@ -403,7 +407,7 @@ def _sign_changes(sign: np.ndarray) -> np.ndarray:
     return ((sign != 0) & (prev != 0) & (sign != prev)).sum(axis=1)
 
 
-def _bandwidth_10db(spec: np.ndarray, df: float) -> np.ndarray:
+def _peak_run_width(spec: np.ndarray, df: float) -> np.ndarray:
     """Width (Hz) of the contiguous run around each row's peak within 10 dB of it."""
     n_rows, n = spec.shape
     peak = np.argmax(spec, axis=1)
@@ -417,7 +421,7 @@ def _bandwidth_10db(spec: np.ndarray, df: float) -> np.ndarray:
     return np.where(top > 0, width, 0.0)
 
 
-def _energy_duration(frame_energy: np.ndarray, hop_s: float) -> np.ndarray:
+def _excess_core_duration(frame_energy: np.ndarray, hop_s: float) -> np.ndarray:
     """Time (s) between 5 % and 95 % of each row's cumulative energy."""
     cum = np.cumsum(frame_energy, axis=1)
     total = cum[:, -1:]

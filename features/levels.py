@@ -92,7 +92,7 @@ def band_level_db(
 
 
 def band_spl_db(pressure_upa: np.ndarray, sample_rate_hz: float, low_hz: float, high_hz: float) -> np.ndarray:
-    """Band-limited rms sound pressure level of a waveform, dB re 1 µPa.
+    """In-band rms sound pressure level (band-pass filtered) of a waveform, dB re 1 µPa.
 
     The mean square of the part of ``pressure_upa`` between ``low_hz`` and ``high_hz``,
     from its periodogram (Parseval: a rectangular filter, no window), so that it adds

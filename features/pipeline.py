@@ -197,7 +197,7 @@ def _describe(
         used = slice(fa - fr0, fb - fr0)
         noise = noise_floor_db(floor_steps, steps, step, frame_idx[used])
         first = k * m - fa
-        # Waveform measures: band-limited pressure at the analysis rate; clipping in the
+        # Waveform measures: band-passed pressure at the analysis rate; clipping in the
         # samples as recorded, where one sample at full scale is enough.
         pressure = signal.oaconvolve(analysed, fir.astype(np.float32), mode="same")
         p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)

@@ -106,13 +106,13 @@ class CallShape:
 
     Parameters
     ----------
-    kind : {'sweep', 'moan'}
+    kind : {'sweep', 'drone'}
         'sweep': ``f0 + (f1 - f0) u^curvature`` with u = t / duration;
-        'moan': ``(f0 + f1) / 2 + wobble_hz sin(2π wobble_rate_hz t)``, near-flat.
-    f0_hz, f1_hz : float, Hz, start and end frequency of a sweep (band of a moan)
+        'drone': ``(f0 + f1) / 2 + wobble_hz sin(2π wobble_rate_hz t)``, near-flat.
+    f0_hz, f1_hz : float, Hz, start and end frequency of a sweep (band of a drone)
     duration_s : float, s
     curvature : float, exponent of a sweep (1 is linear)
-    wobble_hz, wobble_rate_hz : float, Hz, a moan's frequency modulation
+    wobble_hz, wobble_rate_hz : float, Hz, a drone's frequency modulation
     harmonic_db : float, dB, level of the second harmonic relative to the fundamental
     """
 
@@ -132,10 +132,10 @@ def call_frequency_hz(shape: CallShape, t_s: np.ndarray) -> np.ndarray:
     if shape.kind == "sweep":
         u = np.clip(t / shape.duration_s, 0.0, 1.0)
         return shape.f0_hz + (shape.f1_hz - shape.f0_hz) * u**shape.curvature
-    if shape.kind == "moan":
+    if shape.kind == "drone":
         centre = 0.5 * (shape.f0_hz + shape.f1_hz)
         return centre + shape.wobble_hz * np.sin(2 * np.pi * shape.wobble_rate_hz * t)
-    raise ParameterError(f"call kind must be 'sweep' or 'moan', got {shape.kind!r}")
+    raise ParameterError(f"call kind must be 'sweep' or 'drone', got {shape.kind!r}")
 
 
 def _phase(shape: CallShape, t: np.ndarray) -> np.ndarray:
@@ -154,7 +154,7 @@ def call_waveform(shape: CallShape, t_s: np.ndarray, amplitude_upa: float = 1.0,
     """Pressure of one call at times ``t_s`` (s from its start), µPa; zero outside it.
 
     A Tukey envelope (``taper`` = fraction of the duration in the cosine ramps) keeps
-    the call band-limited; ``amplitude_upa`` is the peak amplitude of the fundamental.
+    the call inside the band; ``amplitude_upa`` is the peak amplitude of the fundamental.
     """
     t = np.asarray(t_s, dtype=float)
     d = shape.duration_s

@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import soundfile as sf
-from callsieve.classifier.baseline import call_levels, energy_detections
+from callsieve.classifier.baseline import call_levels, excess_detections
 from callsieve.features.calibration import RecordingChain, samples_from_pressure
 from callsieve.features.descriptors import DescriptorSettings
-from callsieve.features.energy import energy_events, running_floor_db
+from callsieve.features.excess import excess_events, running_floor_db
 
 SETTINGS = DescriptorSettings(
     low_hz=50.0, high_hz=400.0, resolution_hz=5.0, frame_hop_s=0.05, window_s=2.0, window_hop_s=0.5
@@ -35,7 +35,9 @@ def test_events_follow_hysteresis_merge_and_duration():
     x[6:8] = 2.0  # above offset only, never onset: no event
     x[10] = 5.0  # one frame: too short alone
     x[12:15] = [3.5, 6.0, 3.5]
-    start, end, peak = energy_events(x, t, 0.1, onset_db=3.0, offset_db=1.0, min_duration_s=0.25, merge_gap_s=0.15)
+    start, end, peak = excess_events(
+        x, t, 0.1, start_excess_db=3.0, hold_excess_db=1.0, shortest_event_s=0.25, join_gap_s=0.15
+    )
     # Events: [0.2, 0.5) peak 4; [1.0, 1.1) peak 5 merges with [1.2, 1.5) (gap 0.1 s < 0.15 s).
     assert np.allclose(start, [0.2, 1.0]) and np.allclose(end, [0.5, 1.5]) and np.allclose(peak, [4.0, 6.0])
 
@@ -59,7 +61,7 @@ def test_energy_detector_finds_tone_bursts_at_their_times(tmp_path):
         p = p + _tone(seconds, t0, 1.0, 200.0, band_noise_db + 10.0)
     path = tmp_path / "bursts.wav"
     sf.write(path, samples_from_pressure(p, FS, CHAIN), FS, subtype="FLOAT")
-    start, end, peak = energy_detections(path, 0, CHAIN, SETTINGS)
+    start, end, peak = excess_detections(path, 0, CHAIN, SETTINGS)
     strong = peak > 6.0
     assert strong.sum() == 3
     assert np.allclose(start[strong], onsets, atol=0.25)
@@ -68,7 +70,7 @@ def test_energy_detector_finds_tone_bursts_at_their_times(tmp_path):
     # more over its 20th percentile; the peak frame adds the spread of a 70-bin band sum.
     assert np.all((peak[strong] > 10.0) & (peak[strong] < 12.5))
     # Same events with another block size (the frames tile the file).
-    again = energy_detections(path, 0, CHAIN, SETTINGS, block_s=37.0)
+    again = excess_detections(path, 0, CHAIN, SETTINGS, block_s=37.0)
     assert all(np.array_equal(a, b) for a, b in zip((start, end, peak), again, strict=True))
 
 

@@ -29,12 +29,12 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
 
     rows = list(csv.DictReader(open(out / "detections.csv")))
     assert list(rows[0]) == DETECTION_COLUMNS and {r["deployment"] for r in rows} == {"south-slope"}
-    # The evaluation step: model and energy baseline side by side, logged to the training run.
+    # The evaluation step: model and excess baseline side by side, logged to the training run.
     assert "AP energy" in page
     metrics = json.loads((out / "evaluation" / "metrics.json").read_text())
     assert metrics["complete_truth"] and metrics["files_judged"] == 4
     assert metrics["mlflow_run_id"] == scenario_run_id(out)
-    target = metrics["classes"]["rising-moan"]
+    target = metrics["classes"]["tarsel-upsweep"]
     assert target["average_precision"] is not None and target["baseline"]["average_precision"] is not None
 
 

@@ -52,10 +52,10 @@ def test_linear_sweep_slope(tmp_path):
         p += call_waveform(sweep, t - t0, 1e6, taper=0.1)  # 117 dB re 1 µPa rms
     start, values, _ = _describe(tmp_path, p, fs, CHAIN)
     for t0 in (30.25, 60.25, 90.25):
-        slope = _at(start, values, t0 - 0.5, "contour_slope_hz_per_s")
+        slope = _at(start, values, t0 - 0.5, "trace_sweep_rate_hz_per_s")
         assert slope == pytest.approx(100.0, rel=0.05)
-        assert _at(start, values, t0 - 0.5, "contour_min_hz") == pytest.approx(100.0, abs=2 * SETTINGS.resolution_hz)
-        assert _at(start, values, t0 - 0.5, "contour_max_hz") == pytest.approx(200.0, abs=2 * SETTINGS.resolution_hz)
+        assert _at(start, values, t0 - 0.5, "trace_lowest_hz") == pytest.approx(100.0, abs=2 * SETTINGS.resolution_hz)
+        assert _at(start, values, t0 - 0.5, "trace_highest_hz") == pytest.approx(200.0, abs=2 * SETTINGS.resolution_hz)
 
 
 def test_tone_frequency_slope_and_level(tmp_path):
@@ -69,22 +69,22 @@ def test_tone_frequency_slope_and_level(tmp_path):
     start, values, _ = _describe(tmp_path, p, fs, CHAIN)
     inside = (start > 42) & (start < 76)
     col = {n: values[inside, NAMES.index(n)] for n in NAMES}
-    np.testing.assert_allclose(col["contour_median_hz"], 173.0, atol=SETTINGS.resolution_hz)
-    np.testing.assert_allclose(col["contour_slope_hz_per_s"], 0.0, atol=1.0)
+    np.testing.assert_allclose(col["trace_median_hz"], 173.0, atol=SETTINGS.resolution_hz)
+    np.testing.assert_allclose(col["trace_sweep_rate_hz_per_s"], 0.0, atol=1.0)
     np.testing.assert_allclose(col["band_level_db"], 120.0, atol=0.2)
     # Peak-to-peak of a sine: rms + 9.03 dB (REFERENCES §3).
     np.testing.assert_allclose(col["peak_to_peak_db"], 129.03, atol=0.2)
 
 
-def test_white_noise_spectral_entropy_near_maximum(tmp_path):
+def test_white_noise_psd_evenness_near_maximum(tmp_path):
     # A flat spectrum has maximal Shannon entropy (normalised: 1); white noise averaged over
     # 40 frames comes within a few per cent of it (common practice).
     fs = 2000
     start, values, _ = _describe(tmp_path, _noise(fs, 120, 70.0, np.random.default_rng(2)), fs, CHAIN)
-    entropy = values[:, NAMES.index("spectral_entropy")]
+    entropy = values[:, NAMES.index("psd_evenness")]
     assert np.min(entropy) > 0.97 and np.max(entropy) <= 1.0
     # ... and its contour stands above the floor rarely (false-alarm rate 5 % per frame).
-    assert np.mean(values[:, NAMES.index("contour_active_fraction")]) < 0.1
+    assert np.mean(values[:, NAMES.index("trace_cover_fraction")]) < 0.1
 
 
 def _call_scene(fs, rng):
@@ -95,7 +95,7 @@ def _call_scene(fs, rng):
     for t0, shape in [
         (20.3, CallShape("sweep", 90.0, 170.0, 1.2)),
         (60.1, CallShape("sweep", 160.0, 80.0, 1.0)),
-        (100.7, CallShape("moan", 110.0, 120.0, 1.6, wobble_hz=3.0)),
+        (100.7, CallShape("drone", 110.0, 120.0, 1.6, wobble_hz=3.0)),
     ]:
         p += call_waveform(shape, t - t0, 3e5)
     return p
@@ -113,8 +113,8 @@ def test_same_pressure_same_descriptors_at_two_rates_and_two_gains(tmp_path):
     for name, tol in [
         ("band_level_db", 0.2),
         ("peak_to_peak_db", 0.3),
-        ("contour_median_hz", 1.0),
-        ("contour_slope_hz_per_s", 3.0),
+        ("trace_median_hz", 1.0),
+        ("trace_sweep_rate_hz_per_s", 3.0),
         ("snr_db", 0.3),
         ("subband2_level_db", 0.2),
     ]:

@@ -28,7 +28,7 @@ def _ap_of(det, truth, tol=0.5):
 # REFERENCES §7, second row: y_true [1,0,1,1,0,0,1,0] with descending scores -> AP 0.747024.
 Y = [1, 0, 1, 1, 0, 0, 1, 0]
 CONF = [0.95, 0.90, 0.80, 0.70, 0.60, 0.50, 0.40, 0.30]
-KEY = ("dep", "a.wav", "moan")
+KEY = ("dep", "a.wav", "upsweep")
 
 
 def _ranked_case():
@@ -68,8 +68,8 @@ def test_missed_calls_count_at_every_threshold():
 
 
 def test_matching_needs_same_label_and_file_and_respects_tolerance():
-    a, b = ("dep", "a.wav", "moan"), ("dep", "a.wav", "click")
-    c = ("dep", "b.wav", "moan")
+    a, b = ("dep", "a.wav", "upsweep"), ("dep", "a.wav", "click")
+    c = ("dep", "b.wav", "upsweep")
     truth = [(a, 10.0, 12.0)]
     # Wrong label, wrong file, 0.4 s before the call (inside 0.5 s), 0.6 s after (outside).
     det = [(b, 10.0, 12.0, 0.9), (c, 10.0, 12.0, 0.9), (a, 9.0, 9.6, 0.8), (a, 12.6, 13.0, 0.95)]
@@ -82,7 +82,7 @@ def test_matching_needs_same_label_and_file_and_respects_tolerance():
 
 
 def test_matching_is_one_to_one_with_overlapping_calls():
-    k = ("dep", "a.wav", "moan")
+    k = ("dep", "a.wav", "upsweep")
     # Two overlapping calls, 10-14 s and 12-16 s; three detections.
     truth = [(k, 10.0, 14.0), (k, 12.0, 16.0)]
     det = [

@@ -1,8 +1,10 @@
-"""Band-limited energy detection: in-band energy against a running noise floor.
+"""Floor-excess events: how far in-band power rises over its own running floor.
 
-The classic detector that every model is compared with: sum the PSD over the band,
-divide by a running low percentile of that sum, and call each stretch of frames whose
-excess rises above an onset level (and stays above a lower level) one event.
+The simplest detector a model must beat. Per frame, the PSD summed over the analysis
+band; its floor, a running low percentile of that series; the excess, their ratio in
+dB. A stretch of frames is one event when its excess climbs past a start level and it
+ends where the excess sinks under a lower hold level, so one call is not cut into
+pieces by the flicker of its own level.
 """
 
 from __future__ import annotations
@@ -12,7 +14,7 @@ import numpy as np
 from ._validation import ParameterError
 from .noise import noise_floor_db, noise_floor_steps, percentile_to_mean_db
 
-__all__ = ["band_power_db", "running_floor_db", "energy_events"]
+__all__ = ["band_power_db", "running_floor_db", "excess_events"]
 
 
 def band_power_db(psd_db: np.ndarray, frequency_hz: np.ndarray, low_hz: float, high_hz: float) -> np.ndarray:
@@ -61,58 +63,61 @@ def running_floor_db(
     return noise_floor_db(floor, steps, step_frames, np.arange(n))[0].astype(np.float64)
 
 
-def energy_events(
+def excess_events(
     excess_db: np.ndarray,
     frame_start_s: np.ndarray,
     frame_s: float,
-    onset_db: float = 3.0,
-    offset_db: float = 1.0,
-    min_duration_s: float = 0.25,
-    merge_gap_s: float = 0.25,
+    start_excess_db: float = 3.0,
+    hold_excess_db: float = 1.0,
+    shortest_event_s: float = 0.25,
+    join_gap_s: float = 0.25,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Events where the in-band excess over the floor rises above ``onset_db``.
+    """Stretches of frames whose in-band excess over the floor climbs past ``start_excess_db``.
 
-    An event is a run of frames at or above ``offset_db`` that holds at least one frame
-    at or above ``onset_db`` (hysteresis); events closer than ``merge_gap_s`` are joined,
-    and events shorter than ``min_duration_s`` dropped.
+    A stretch is a run of frames whose excess stays at or above ``hold_excess_db`` and
+    that reaches ``start_excess_db`` somewhere (two levels, so a call's own flicker does
+    not split it); stretches separated by less than ``join_gap_s`` become one, and
+    stretches shorter than ``shortest_event_s`` are dropped.
 
     Parameters
     ----------
     excess_db : np.ndarray [shape=(n_frames,)], dB, band power minus its running floor
     frame_start_s : np.ndarray [shape=(n_frames,)], s, start of each (consecutive) frame
     frame_s : float, s, frame length
-    onset_db, offset_db : float, dB, ``offset_db <= onset_db``
-    min_duration_s, merge_gap_s : float, s
+    start_excess_db, hold_excess_db : float, dB, ``hold_excess_db <= start_excess_db``
+    shortest_event_s, join_gap_s : float, s
 
     Returns
     -------
     start_s, end_s, peak_db : np.ndarray [shape=(n_events,)]
         Times of each event, and its highest excess (the detector's score).
     """
-    if offset_db > onset_db:
-        raise ParameterError(f"offset_db ({offset_db:g}) must not exceed onset_db ({onset_db:g})")
+    if hold_excess_db > start_excess_db:
+        raise ParameterError(
+            f"hold_excess_db ({hold_excess_db:g}) must not exceed start_excess_db ({start_excess_db:g})"
+        )
     x = np.asarray(excess_db, dtype=float)
     t = np.asarray(frame_start_s, dtype=float)
     empty = np.empty(0)
     if x.size == 0:
         return empty, empty, empty
-    above = np.r_[False, x >= offset_db, False].astype(np.int8)
+    above = np.r_[False, x >= hold_excess_db, False].astype(np.int8)
     edges = np.diff(above)
     first, stop = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)  # runs [first, stop)
     if first.size == 0:
         return empty, empty, empty
     peak = _run_max(x, first, stop)
-    keep = peak >= onset_db
+    keep = peak >= start_excess_db
     first, stop, peak = first[keep], stop[keep], peak[keep]
     if first.size == 0:
         return empty, empty, empty
     start_s = t[first]
     end_s = t[stop - 1] + frame_s
-    new = np.r_[True, start_s[1:] - end_s[:-1] >= merge_gap_s]
+    new = np.r_[True, start_s[1:] - end_s[:-1] >= join_gap_s]
     g_start = start_s[new]
     g_end = np.maximum.reduceat(end_s, np.flatnonzero(new))
     g_peak = np.maximum.reduceat(peak, np.flatnonzero(new))
-    long_enough = g_end - g_start >= min_duration_s
+    long_enough = g_end - g_start >= shortest_event_s
     return g_start[long_enough], g_end[long_enough], g_peak[long_enough]
 
 
