@@ -251,7 +251,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=_cmd_export)
 
     p = verbs.add_parser(
-        "evaluate", parents=[common], help="judge a scoring run and an excess baseline against labelled truth"
+        "evaluate", parents=[common], help="judge a scoring run and a floor-excess baseline against labelled truth"
     )
     p.add_argument("db", metavar="DB", help="detection store")
     p.add_argument(

@@ -39,7 +39,13 @@ from .evaluation import (
 )
 from .export import CAUTION
 from .labels import BACKGROUND, read_label_table
-from .plots import confusion_figure, pyplot
+from .plots import (
+    confusion_figure,
+    precision_recall_figure,
+    recall_by_level_figure,
+    save,
+    threshold_figure,
+)
 from .scoring import Progress
 from .store import latest_run_id, open_store
 
@@ -281,7 +287,7 @@ def evaluate(
             for k in range(bins["calls"].size):
                 recall_rows.append({"label": c, "measure": measure} | {key: _cell(v[k]) for key, v in bins.items()})
 
-        # The baseline: every energy event is a candidate of this class, judged by the same rule.
+        # The baseline: every floor-excess event is a candidate of this class, judged by the same rule.
         b_match = match_detections(
             b_code * n_labels + label_code[c],
             b_start,
@@ -358,7 +364,8 @@ def evaluate(
     _write_csv(out / "thresholds.csv", table_rows)
     _write_csv(out / "recall_by_level.csv", recall_rows)
     _write_matches(out / "matches.csv", dets, match, truth)
-    figures = _figures(out, curves, per_class, recall_rows, confusion_labels, confusion)
+    where = f"{run['deployment']}, run {run_id}"
+    figures = _figures(out, curves, per_class, recall_rows, confusion_labels, confusion, where)
     logged = _log_to_mlflow(run["model_sha256"], run_id, out, metrics, tracking_uri)
     if logged:
         metrics["mlflow_run_id"] = logged
@@ -380,7 +387,7 @@ def _audio_pass(dep, judged: list[str], truth: list, settings, detector: ExcessD
     b_parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
     failed: set[str] = set()
     records = {r.name: r for r in dep.files}
-    meter = Progress(len(judged), sum(records[f].duration_s for f in judged if f in records), say, "energy events")
+    meter = Progress(len(judged), sum(records[f].duration_s for f in judged if f in records), say, "excess events")
     for f in judged:
         rec = records.get(f)
         if rec is None:
@@ -534,85 +541,52 @@ def _write_matches(path: Path, dets: dict[str, Any], match: np.ndarray, truth: l
             )
 
 
-def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion) -> list[Path]:
-    plt = pyplot()
-    paths = []
-    classes = list(curves)
-    n = max(len(classes), 1)
-    fig, axes = plt.subplots(1, n, figsize=(3.6 * n, 3.6), squeeze=False)
-    for ax, c in zip(axes[0], classes, strict=False):
-        model, base = curves[c]
-        ax.step(
-            model.recall, model.precision, where="post", label=f"model AP {per_class[c]['average_precision'] or 0:.2f}"
+def _figures(out, curves, per_class, recall_rows, confusion_labels, confusion, where: str) -> list[Path]:
+    pr_panels, thr_panels = [], []
+    for c, (model, base) in curves.items():
+        pc = per_class[c]
+        op = pc["operating"]
+        pr_panels.append(
+            {
+                "label": c,
+                "model": {"recall": model.recall, "precision": model.precision, "ap": pc["average_precision"]},
+                "baseline": {
+                    "recall": base.recall,
+                    "precision": base.precision,
+                    "ap": pc["baseline"]["average_precision"],
+                },
+                "operating": {
+                    "threshold": pc["operating_threshold"],
+                    "recall": op["recall"],
+                    "precision": op["precision"],
+                },
+            }
         )
-        ax.step(
-            base.recall,
-            base.precision,
-            where="post",
-            linestyle="--",
-            label=f"excess baseline AP {per_class[c]['baseline']['average_precision'] or 0:.2f}",
+        thr_panels.append(
+            {
+                "label": c,
+                "threshold": model.threshold,
+                "precision": model.precision,
+                "recall": model.recall,
+                "operating_threshold": pc["operating_threshold"],
+            }
         )
-        ax.set_xlim(0, 1)
-        ax.set_ylim(0, 1.02)
-        ax.set_xlabel("recall")
-        ax.set_ylabel("precision")
-        ax.set_title(c)
-        ax.legend(fontsize=7, loc="lower left")
-    fig.tight_layout()
-    paths.append(out / "precision_recall.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
-
-    fig, axes = plt.subplots(1, n, figsize=(3.6 * n, 3.4), squeeze=False)
-    for ax, c in zip(axes[0], classes, strict=False):
-        model = curves[c][0]
-        ax.plot(model.threshold, model.precision, label="precision")
-        ax.plot(model.threshold, model.recall, label="recall")
-        ax.axvline(per_class[c]["operating_threshold"], color="0.5", linewidth=0.8)
-        ax.set_xlim(0, 1)
-        ax.set_ylim(0, 1.02)
-        ax.set_xlabel("confidence threshold")
-        ax.set_title(c)
-        ax.legend(fontsize=7)
-    fig.tight_layout()
-    paths.append(out / "precision_recall_vs_threshold.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
-
-    fig, axes = plt.subplots(1, 2, figsize=(8.0, 3.4))
-    for ax, measure, unit in (
-        (axes[0], "snr_db", "SNR, dB"),
-        (axes[1], "received_level_db", "received level, dB re 1 µPa"),
-    ):
-        for c in classes:
-            rows = [r for r in recall_rows if r["label"] == c and r["measure"] == measure and r["calls"]]
-            if not rows:
-                continue
-            x = [(r["low"] + r["high"]) / 2 for r in rows]
-            y = [r["recall"] for r in rows]
-            err = [[r["recall"] - r["recall_low"] for r in rows], [r["recall_high"] - r["recall"] for r in rows]]
-            ax.errorbar(x, y, yerr=err, marker="o", markersize=3, capsize=2, label=c)
-        ax.set_ylim(0, 1.02)
-        ax.set_xlabel(unit)
-        ax.set_ylabel("recall at the operating threshold")
-        ax.legend(fontsize=7)
-    fig.tight_layout()
-    paths.append(out / "recall_vs_level.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
-
-    paths.append(
-        confusion_figure(
-            confusion,
-            confusion_labels["rows"],
-            confusion_labels["columns"],
-            "detected as (operating thresholds)",
-            "truth",
-            "Truth calls against detections",
+    return [
+        save(precision_recall_figure(pr_panels, where), out / "precision_recall.png"),
+        save(threshold_figure(thr_panels, where), out / "precision_recall_vs_threshold.png"),
+        save(recall_by_level_figure(recall_rows, list(curves), where), out / "recall_vs_level.png"),
+        save(
+            confusion_figure(
+                confusion,
+                confusion_labels["rows"],
+                confusion_labels["columns"],
+                "detected as (at each class's operating threshold)",
+                "truth",
+                f"Truth calls against detections, {where}",
+            ),
             out / "confusion.png",
-        )
-    )
-    return paths
+        ),
+    ]
 
 
 def _log_to_mlflow(model_sha256: str, run_id: int, out: Path, metrics: dict, tracking_uri: str | None) -> str | None:
@@ -657,11 +631,12 @@ def format_evaluation(metrics: dict[str, Any], target: str | None = None, cautio
 
     ``target`` marks that class's row; ``caution`` ends with the usual caution.
     """
+    w = max([len("label")] + [len(c) for c in metrics["classes"]])
     lines = [
         f"Evaluation of scoring run {metrics['run_id']} ({metrics['deployment']}): {metrics['files_judged']} files, "
         f"{metrics['recorded_hours']:.2f} h, {metrics['effort_hours']} hours with effort; "
         f"match tolerance {metrics['tolerance_s']:g} s",
-        f"{'label':<14} {'calls':>6} {'AP model':>9} {'AP energy':>10} "
+        f"{'label':<{w}} {'calls':>6} {'AP model':>9} {'AP excess':>10} "
         f"{'thr@P' + format(metrics['target_precision'], 'g'):>9} {'recall (95% CI)':>22} {'hours P/R':>11}",
     ]
     for c, m in metrics["classes"].items():
@@ -673,7 +648,7 @@ def format_evaluation(metrics: dict[str, Any], target: str | None = None, cautio
         hp = m["hour_presence"]
         hours = f"{hp['precision'] or 0:.2f}/{hp['recall'] or 0:.2f}"
         lines.append(
-            f"{c:<14} {m['truth_calls']:>6} {m['average_precision'] or 0:>9.3f} "
+            f"{c:<{w}} {m['truth_calls']:>6} {m['average_precision'] or 0:>9.3f} "
             f"{m['baseline']['average_precision'] or 0:>10.3f} {'none' if thr is None else format(thr, '.2f'):>9} "
             f"{rec_txt:>22} {hours:>11}" + ("  (target)" if c == target else "")
         )

@@ -25,19 +25,21 @@ DEFAULT_EXPERIMENT = "callsieve"
 def _plots(result: Any, folder: Path) -> list[Path]:
     from sklearn.metrics import precision_recall_curve
 
-    from .plots import confusion_figure, pyplot
+    from .plots import confusion_figure, pyplot, save
 
     plt = pyplot()
     val = result.validation
     classes = val["classes"]
     paths = [
-        confusion_figure(
-            np.array(val["overall"]["confusion"]),
-            classes,
-            classes,
-            "decided class (out of fold)",
-            "labelled class",
-            "Grouped cross-validation: confusion (windows)",
+        save(
+            confusion_figure(
+                np.array(val["overall"]["confusion"]),
+                classes,
+                classes,
+                "decided class (out of fold)",
+                "labelled class",
+                "Grouped cross-validation: confusion (windows)",
+            ),
             folder / "confusion_matrix.png",
         )
     ]
@@ -55,12 +57,10 @@ def _plots(result: Any, folder: Path) -> list[Path]:
     ax.set_ylabel("precision")
     ax.set_xlim(0, 1)
     ax.set_ylim(0, 1.02)
-    ax.legend(fontsize=8)
-    ax.set_title("Grouped cross-validation: precision-recall (windows)")
+    ax.legend(fontsize=8, loc="lower left")
+    ax.set_title("Grouped cross-validation: precision-recall (windows)", fontsize=10)
     fig.tight_layout()
-    paths.append(folder / "pr_curves.png")
-    fig.savefig(paths[-1], dpi=110)
-    plt.close(fig)
+    paths.append(save(fig, folder / "pr_curves.png"))
     return paths
 
 
