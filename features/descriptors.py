@@ -1,6 +1,6 @@
 """Contour and band-energy descriptors of analysis windows, in physical units.
 
-One row per analysis window, computed for all windows of a block at once. The table
+One row per analysis window, computed for all windows of a block at once.
 The table :func:`descriptor_table` gives each descriptor's name, unit and meaning; the README prints it.
 """
 
