@@ -93,7 +93,8 @@ def format_training_report(report: dict) -> str:
         f"band             {s['low_hz']:g}-{s['high_hz']:g} Hz, resolution {s['resolution_hz']:g} Hz, "
         f"window {s['window_s']:g} s every {s['window_hop_s']:g} s",
         "examples         " + ", ".join(f"{k} {v}" for k, v in sorted(report["examples"].items())),
-        f"grouped CV       {report['cv_folds']} folds; per class: average precision, precision and recall at 0.5",
+        f"cross-validation {report['cv_folds']} folds, grouped by {report['cv_grouping']}; per class: "
+        "average precision, precision and recall at 0.5",
     ]
     for c, m in sorted(report["cv"].items()):
         lines.append(

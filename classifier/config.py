@@ -74,7 +74,9 @@ class TrainingConfig:
         in-band background windows (the rest is drawn at random)
     min_overlap : float, 0..1, share of a call (or of the window, for calls longer than
         it) a window must hold to be an example of that call
-    group_by : {'hour', 'file', 'deployment'}, what may not feed both sides of a fold
+    group_by : {'auto', 'hour', 'file', 'deployment'}, what may not feed both sides of a
+        fold; 'auto' takes clock hours, else files, else 10-minute blocks, the first that
+        gives at least two groups per fold
     folds : int, grouped cross-validation folds, for metrics and calibration alike
         (fewer when there are fewer groups)
     seed : int
@@ -88,7 +90,7 @@ class TrainingConfig:
     background_ratio: float = 4.0
     hard_fraction: float = 0.5
     min_overlap: float = 0.5
-    group_by: str = "hour"
+    group_by: str = "auto"
     folds: int = 4
     seed: int = 0
     descriptors: dict[str, Any] = field(default_factory=dict)
@@ -127,7 +129,7 @@ _CONSTRAINTS = [
     ("background_ratio", lambda v: isinstance(v, int | float) and v > 0, "a number > 0"),
     ("hard_fraction", lambda v: isinstance(v, int | float) and 0 <= v <= 1, "a number in 0..1"),
     ("min_overlap", lambda v: isinstance(v, int | float) and 0 < v <= 1, "a number in (0, 1]"),
-    ("group_by", lambda v: v in ("hour", "file", "deployment"), "'hour', 'file' or 'deployment'"),
+    ("group_by", lambda v: v in ("auto", "hour", "file", "deployment"), "'auto', 'hour', 'file' or 'deployment'"),
     ("folds", lambda v: isinstance(v, int) and v >= 2, "an integer >= 2"),
     ("seed", lambda v: isinstance(v, int), "an integer"),
 ]

@@ -163,7 +163,7 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
     if "training" in summary:
         tr = summary["training"]
         st = tr["settings"]
-        lines += ["", "Training (grouped cross-validation by recording hour, windows)"]
+        lines += ["", f"Training (cross-validation over windows, grouped by {tr['cv_grouping']})"]
         lines.append(
             f"  band {st['low_hz']:g}-{st['high_hz']:g} Hz, windows of {st['window_s']:g} s every "
             f"{st['window_hop_s']:g} s; model {tr['model']}"

@@ -25,6 +25,8 @@ from .errors import InputError
 __all__ = ["CallClassifier", "CallModel", "save_model", "load_model", "TRUSTED_TYPES", "MODEL_FORMAT"]
 
 MODEL_FORMAT = "callsieve-model/1"
+#: Weight of the raw score beside the isotonic calibration: ranks without ties.
+_TIE_BREAK = 1e-3
 
 
 class CallClassifier(ClassifierMixin, BaseEstimator):
@@ -116,7 +118,10 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     def _calibrate(self, raw: np.ndarray, calibrators: list) -> np.ndarray:
         def one(cal, column):
             if isinstance(cal, IsotonicRegression):
-                return cal.predict(column)
+                # An isotonic fit is a staircase: dozens of windows would share its top
+                # step and lose their order. A small share of the raw score makes the
+                # map strictly increasing (it moves no probability by more than _TIE_BREAK).
+                return (1.0 - _TIE_BREAK) * cal.predict(column) + _TIE_BREAK * column
             return cal.predict_proba(_logit(column)[:, None])[:, 1]
 
         if len(self.classes_) == 2:

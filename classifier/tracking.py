@@ -125,6 +125,7 @@ def log_training_run(
     params |= {k: v for k, v in cfg.items() if k not in ("params", "descriptors")}
     params["target"] = model.target or "all labels"
     params["classes"] = ",".join(model.classes)
+    params["cv_grouping"] = result.validation.get("grouping", "")
     out: dict[str, str] = {}
     with mlflow.start_run() as run:
         mlflow.log_params({k: str(v) for k, v in params.items()})

@@ -13,7 +13,6 @@ import time
 from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from datetime import timedelta
 from pathlib import Path
 from typing import Any
 
@@ -97,6 +96,7 @@ class ExampleSet:
     counts: dict[str, dict[str, int]] = field(default_factory=dict)  # per set, per class
     windows_described: int = 0
     hours_described: float = 0.0
+    grouping: str = ""  # what the cross-validation groups really are
 
 
 def _nice_resolution(target_hz: float) -> float:
@@ -228,7 +228,7 @@ def collect_examples(
             n_described += values.shape[0]
             seconds += rec.duration_s
             label, _ = _assign(start, end, by_file[name], config.min_overlap, keep_classes)
-            group = _groups(dep, rec, start, config.group_by)
+            group = _group_keys(dep, rec, start)
             pos = (label != "") & (label != BACKGROUND)
             pos_X.append(values[pos])
             pos_y.append(label[pos])
@@ -248,9 +248,9 @@ def collect_examples(
                 )
         X_pos = np.concatenate(pos_X) if pos_X else np.empty((0, len(names)), np.float32)
         y_pos = np.concatenate(pos_y) if pos_y else np.empty(0, object)
-        g_pos = np.concatenate(pos_g) if pos_g else np.empty(0, object)
+        g_pos = np.concatenate(pos_g) if pos_g else np.empty(0, _KEY_DTYPE)
         X_bg = np.concatenate(bg_X) if bg_X else np.empty((0, len(names)), np.float32)
-        g_bg = np.concatenate(bg_g) if bg_g else np.empty(0, object)
+        g_bg = np.concatenate(bg_g) if bg_g else np.empty(0, _KEY_DTYPE)
         idx, weight = _sample_background(
             X_bg[:, snr_col],
             max(int(config.background_ratio * max(len(y_pos), 1)), 1),
@@ -270,30 +270,72 @@ def collect_examples(
             "the labelled sets give only one class of windows; label calls in the tables "
             "(or check --target, and that the calls fall inside annotated files)"
         )
+    groups, grouping = resolve_groups(np.concatenate(parts_g), config.group_by, config.folds)
     return ExampleSet(
         X,
         y,
         np.concatenate(parts_w),
-        np.concatenate(parts_g).astype(str),
+        groups,
         np.concatenate(parts_s).astype(str),
         names,
         counts,
         n_described,
         seconds / 3600.0,
+        grouping,
     )
 
 
-def _groups(dep: Deployment, rec, start_s: np.ndarray, group_by: str) -> np.ndarray:
-    if group_by == "deployment":
-        return np.full(start_s.size, dep.name, dtype=object)
-    if group_by == "file":
-        return np.full(start_s.size, f"{dep.name}/{rec.name}", dtype=object)
-    # Hour of the UTC clock in which each window starts.
-    base = rec.start_utc.replace(minute=0, second=0, microsecond=0)
-    offset = (rec.start_utc - base).total_seconds()
-    hours = np.floor((start_s + offset) / 3600.0).astype(int)
-    labels = {h: f"{dep.name}/{(base + timedelta(hours=int(h))):%Y%m%dT%H}" for h in np.unique(hours)}
-    return np.array([labels[h] for h in hours], dtype=object)
+#: Blocks of recording time used as groups when hours and files are too few, s.
+BLOCK_S = 600.0
+_KEY_DTYPE = [("deployment", object), ("file", object), ("t", float)]
+
+
+def _group_keys(dep: Deployment, rec, start_s: np.ndarray) -> np.ndarray:
+    """Per window: deployment, file and UTC start (s since the epoch), as one record each."""
+    t = rec.start_utc.timestamp() + np.asarray(start_s, dtype=float)
+    keys = np.empty(t.size, dtype=_KEY_DTYPE)
+    keys["deployment"], keys["file"], keys["t"] = dep.name, f"{dep.name}/{rec.name}", t
+    return keys
+
+
+def _group_labels(keys: np.ndarray, unit: str) -> np.ndarray:
+    if unit == "deployment":
+        return keys["deployment"].astype(str)
+    if unit == "file":
+        return keys["file"].astype(str)
+    span = 3600.0 if unit == "hour" else BLOCK_S
+    # Clock hours (or 10-minute blocks) of UTC in which each window starts, per deployment.
+    block = np.floor(keys["t"] / span).astype(np.int64).astype(str)
+    return np.char.add(np.char.add(keys["deployment"].astype(str), "/"), block)
+
+
+def resolve_groups(keys: np.ndarray, group_by: str, folds: int) -> tuple[np.ndarray, str]:
+    """Cross-validation groups, and a line that says what they really are.
+
+    ``auto`` takes the coarsest unit that gives at least ``2 * folds`` groups: clock
+    hours, else files, else 10-minute blocks of recording; a few labelled hours would
+    otherwise make "grouped" folds out of one or two groups. Fewer than two groups of
+    any unit leaves the folds ungrouped, which is said.
+
+    Parameters
+    ----------
+    keys : structured np.ndarray from ``_group_keys`` (deployment, file, t in s)
+    group_by : {'auto', 'hour', 'file', 'deployment'}
+    folds : int
+
+    Returns
+    -------
+    groups : np.ndarray of str, one per example
+    described : str, e.g. "file (12 groups)" or "none: 1 group of any unit, ungrouped folds"
+    """
+    units = ["hour", "file", "block"] if group_by == "auto" else [group_by]
+    for unit in units:
+        groups = _group_labels(keys, unit)
+        n = np.unique(groups).size
+        if n >= 2 * folds or unit == units[-1] and n >= 2:
+            name = "10-minute block" if unit == "block" else unit
+            return groups, f"{name} ({n} groups)"
+    return groups, f"none: only {n} group, folds are ungrouped (neighbouring windows on both sides)"
 
 
 def _sample_background(
@@ -436,7 +478,7 @@ def train_model(
     t1 = time.perf_counter()
     estimator = _estimator(config).fit(examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups)
     t2 = time.perf_counter()
-    validation = cross_validate(estimator, examples) | {"group_by": config.group_by}
+    validation = cross_validate(estimator, examples) | {"group_by": config.group_by, "grouping": examples.grouping}
     t3 = time.perf_counter()
     summary = {
         "sets": [
@@ -549,6 +591,7 @@ def train(
         "examples_per_set": result.model.summary["examples_per_set"],
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],
+        "cv_grouping": result.validation["grouping"],
         "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
     }
     if track:

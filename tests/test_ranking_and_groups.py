@@ -1,0 +1,80 @@
+"""Confidences that rank without ties, and cross-validation groups that really group."""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime
+
+import numpy as np
+from callsieve.classifier.model import CallClassifier
+from callsieve.classifier.training import _group_keys, resolve_groups
+from sklearn.datasets import make_classification
+from sklearn.metrics import roc_auc_score
+
+
+class _Dep:
+    def __init__(self, name):
+        self.name = name
+
+
+class _Rec:
+    def __init__(self, name, start):
+        self.name = name
+        self.start_utc = start
+
+
+def _keys(files: list[tuple[str, datetime, float]], step_s: float = 1.0) -> np.ndarray:
+    parts = []
+    for name, start, duration_s in files:
+        parts.append(_group_keys(_Dep("site"), _Rec(name, start), np.arange(0.0, duration_s, step_s)))
+    return np.concatenate(parts)
+
+
+def test_isotonic_confidences_rank_without_ties():
+    # An isotonic calibrator fitted on a few hundred positives is a staircase ending in a
+    # plateau; stored confidences must still rank. The acceptance rule of the detector
+    # work: at most 1 % of rows share the top value.
+    X, y = make_classification(n_samples=3000, n_features=8, n_informative=5, weights=[0.9], random_state=1)
+    groups = np.arange(y.size) // 100
+    model = CallClassifier(params={"max_iter": 30}, calibration="isotonic", folds=3).fit(
+        X[:2000], y[:2000], None, groups[:2000]
+    )
+    p = model.predict_proba(X[2000:])[:, 1]
+    top_share = np.mean(p == p.max())
+    assert top_share <= 0.01, f"{top_share:.1%} of rows share the top confidence"
+    # Calibration loses no rank: as many distinct confidences as distinct raw scores, and
+    # the ranking is as good as the raw scores' (scikit-learn's roc_auc_score as the
+    # reference); no probability leaves 0..1.
+    raw = model.estimator_.predict_proba(X[2000:].astype(np.float32))[:, 1]
+    assert np.unique(p).size == np.unique(raw).size
+    assert roc_auc_score(y[2000:], p) == np.float64(roc_auc_score(y[2000:], raw))
+    assert p.min() >= 0.0 and p.max() <= 1.0
+
+
+def test_auto_grouping_falls_back_from_hours_to_files():
+    # Six hours in twelve 30-minute files: 6 hour groups are fewer than two per fold
+    # (4 folds), 12 file groups are enough.
+    t0 = datetime(2031, 3, 2, tzinfo=UTC)
+    files = [(f"f{k:02d}.wav", t0.replace(hour=k // 2, minute=30 * (k % 2)), 1800.0) for k in range(12)]
+    groups, described = resolve_groups(_keys(files, 10.0), "auto", folds=4)
+    assert described == "file (12 groups)"
+    assert np.unique(groups).size == 12
+
+
+def test_auto_grouping_uses_blocks_of_minutes_when_labels_cover_40_minutes():
+    # One file of 40 minutes (the case that turned "by hour" folds into ungrouped ones):
+    # 10-minute blocks give 4 groups, and each block's windows stay together.
+    t0 = datetime(2031, 3, 2, 5, 0, tzinfo=UTC)
+    keys = _keys([("one.wav", t0, 2400.0)])
+    groups, described = resolve_groups(keys, "auto", folds=4)
+    assert described == "10-minute block (4 groups)"
+    minutes = (keys["t"] - keys["t"][0]) / 60.0
+    for g in np.unique(groups):
+        m = minutes[groups == g]
+        assert m.max() - m.min() < 10.0
+
+
+def test_grouping_that_cannot_group_says_so():
+    t0 = datetime(2031, 3, 2, 5, 0, tzinfo=UTC)
+    groups, described = resolve_groups(_keys([("one.wav", t0, 1200.0)]), "hour", folds=4)
+    assert np.unique(groups).size == 1
+    assert described.startswith("none:") and "ungrouped" in described
