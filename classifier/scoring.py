@@ -357,6 +357,39 @@ class Progress:
         )
 
 
+# Test hooks (fault injection) for the resume tests; read once per run, and when unset
+# they cost one comparison per file. With CALLSIEVE_FAULT_AFTER_FILES=k the process dies
+# (os._exit(137), the exit status of SIGKILL: no cleanup, no rollback, no atexit) right
+# after the k-th file that this run scores has committed; with CALLSIEVE_FAULT_INSIDE_FILE=k
+# it dies inside that file's transaction, after all its rows are written and before
+# COMMIT, which must leave nothing of the file. k counts files scored by this run (not
+# those skipped as done) from 1.
+FAULT_AFTER_FILES = "CALLSIEVE_FAULT_AFTER_FILES"
+FAULT_INSIDE_FILE = "CALLSIEVE_FAULT_INSIDE_FILE"
+FAULT_EXIT_STATUS = 137
+
+
+def _fault_point(variable: str) -> int | None:
+    value = os.environ.get(variable)
+    if not value:
+        return None
+    try:
+        k = int(value)
+    except ValueError:
+        k = 0
+    if k < 1:
+        raise InputError(f"{variable}={value}: a test hook, must be a whole number >= 1 (or unset)")
+    return k
+
+
+def _die(variable: str, k: int) -> Callable[[], None]:
+    def crash() -> None:
+        os.write(2, f"callsieve: {variable}={k}: dying on purpose (test hook)\n".encode())
+        os._exit(FAULT_EXIT_STATUS)
+
+    return crash
+
+
 def score_deployment(
     model_path: str | Path,
     manifest: str | Path,
@@ -429,6 +462,7 @@ def _score_deployment(
     progress: Callable[[str], None] | None,
     pool: Any,
 ) -> dict[str, Any]:
+    die_after, die_inside = _fault_point(FAULT_AFTER_FILES), _fault_point(FAULT_INSIDE_FILE)
     model_path = Path(model_path)
     model = load_model(model_path)
     dep = load_deployment(manifest)
@@ -481,7 +515,7 @@ def _score_deployment(
     meter = Progress(len(todo), sum(f.duration_s for f in todo), progress)
     t0 = time.perf_counter()
     stored = 0
-    for result in _results(model, dep, todo, threshold, jobs, scheduler, block_s, pool):
+    for n, result in enumerate(_results(model, dep, todo, threshold, jobs, scheduler, block_s, pool), start=1):
         rec = records[result.name]
         stored += replace_file_result(
             con,
@@ -493,7 +527,10 @@ def _score_deployment(
             rec.mtime_ns,
             result.windows,
             result.rows,
+            before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
         )
+        if n == die_after:
+            _die(FAULT_AFTER_FILES, n)()
         if result.status == "failed":
             failed.append({"file": rec.name, "error": result.error})
         meter.add(rec.duration_s, len(result.rows))

@@ -18,7 +18,7 @@ Schema (``SCHEMA_VERSION`` 1):
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -203,11 +203,13 @@ def replace_file_result(
     mtime_ns: int,
     windows: int,
     rows: Iterable[tuple],
+    before_commit: Callable[[], None] | None = None,
 ) -> int:
     """Store one file's outcome in one transaction; return the number of detections stored.
 
     Earlier detections of this run and file go, except those with verdicts, which are
-    kept and marked superseded so that no reviewer's work is lost.
+    kept and marked superseded so that no reviewer's work is lost. ``before_commit``
+    (a test hook) is called inside the transaction after every write, just before COMMIT.
     """
     rows = list(rows)
     with Transaction(con):
@@ -234,6 +236,8 @@ def replace_file_result(
             "scored_utc=excluded.scored_utc",
             (run_id, file_id, status, error, size_bytes, mtime_ns, windows, len(rows), now_utc()),
         )
+        if before_commit is not None:
+            before_commit()
     return len(rows)
 
 
