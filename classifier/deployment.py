@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 from callsieve.features.calibration import RecordingChain, ResponseCurve
 from callsieve.features.propagation import Seawater
-from callsieve.features.streaming import AudioInfo, AudioReadError, audio_info
+from callsieve.features.streaming import AudioInfo, AudioReader, AudioReadError, audio_info
 
 from .errors import InputError, read_toml
 
@@ -470,6 +470,8 @@ def _scan(audio_dir: Path, glob: str, fmt: str, manifest: Path) -> tuple[list[Re
             )
         try:
             info = audio_info(p)
+            if info.format == "FLAC":
+                _check_flac_end(p, info.frames)
         except AudioReadError as exc:
             faults.append(FileFault(name, exc.reason))
             continue
@@ -479,3 +481,23 @@ def _scan(audio_dir: Path, glob: str, fmt: str, manifest: Path) -> tuple[list[Re
         st = p.stat()
         files.append(RecordedFile(p, name, start, info, st.st_size, st.st_mtime_ns))
     return files, faults
+
+
+# Samples decoded at the end of each FLAC when listing. A FLAC's header states the length
+# of the whole stream, so a copy cut short (a FLAC that loses sync, docs/formats.md §1)
+# shows only when its end is decoded; a WAV's is checked against its header instead.
+_FLAC_TAIL = 4096
+
+
+def _check_flac_end(path: Path, frames: int) -> None:
+    """Raise AudioReadError ("truncated") when the last samples of a FLAC cannot be decoded."""
+    if frames <= 0:
+        return
+    try:
+        with AudioReader(path) as reader:
+            reader.read(max(frames - _FLAC_TAIL, 0), frames)
+    except AudioReadError as exc:
+        reason = exc.reason
+        if not reason.startswith("truncated"):
+            reason = f"truncated: its end does not decode ({reason})"
+        raise AudioReadError(path, reason) from None

@@ -29,6 +29,9 @@ def _tone(seconds, start_s, length_s, freq_hz, rms_db):
 
 
 def test_events_follow_hysteresis_merge_and_duration():
+    # Worked by hand from the event rule of docs/evaluation.md §2 "Baseline" (climbs past
+    # the start excess, holds above the hold excess, short pauses joined, short events
+    # dropped), with the thresholds given here: 3 dB and 1 dB as documented, a 0.15 s join.
     t = np.arange(20) * 0.1
     x = np.zeros(20)
     x[2:5] = [2.0, 4.0, 2.0]  # above onset: one event 0.2-0.5+frame
@@ -43,6 +46,10 @@ def test_events_follow_hysteresis_merge_and_duration():
 
 
 def test_running_floor_of_a_steady_level_is_that_level_and_ignores_short_events():
+    # docs/evaluation.md §2: the floor is the running 20th percentile over the noise span
+    # (a minute). Worked by hand: the percentile of a constant is that constant, and a
+    # burst filling 4 % of the span cannot move the 20th percentile (common practice for
+    # order statistics).
     level = np.full(4000, 100.0)
     level[1000:1040] = 130.0  # 2 s burst at 0.05 s frames: far less than 80 % of a minute
     floor = running_floor_db(level, SETTINGS.noise_span_frames, SETTINGS.frames_per_noise_step, 1, 20.0)

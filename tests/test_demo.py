@@ -30,12 +30,20 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     rows = list(csv.DictReader(open(out / "detections.csv")))
     assert list(rows[0]) == DETECTION_COLUMNS and {r["deployment"] for r in rows} == {"south-slope"}
     # The evaluation step: model and excess baseline side by side, logged to the training run.
-    assert "AP energy" in page
+    assert "AP model" in page and "AP excess" in page
     metrics = json.loads((out / "evaluation" / "metrics.json").read_text())
     assert metrics["complete_truth"] and metrics["files_judged"] == 4
     assert metrics["mlflow_run_id"] == scenario_run_id(out)
     target = metrics["classes"]["tarsel-upsweep"]
-    assert target["average_precision"] is not None and target["baseline"]["average_precision"] is not None
+    assert target["truth_calls"] > 0
+    model_ap, baseline_ap = target["average_precision"], target["baseline"]["average_precision"]
+    # The demo's measured values, with margin: at its defaults (seed 7, 12 h, 173 target
+    # calls) the README gives AP 0.717 for the model and 0.267 for the excess baseline; on
+    # this run (seed 5, 2 h, 6 target calls) they were 1.00 and 0.17 (2026-12-02). The
+    # floors keep the model above 0.5 and at least 0.2 above the baseline (less than half
+    # the default run's gap of 0.45).
+    assert model_ap > 0.5
+    assert model_ap > baseline_ap + 0.2
 
 
 def scenario_run_id(out):

@@ -1,4 +1,4 @@
-"""Manifests (SPEC §1) and `callsieve calibrate`: times, effort, gaps, faults, bad input."""
+"""Manifests (docs/formats.md §1) and `callsieve calibrate`: times, effort, gaps, faults, bad input."""
 
 from __future__ import annotations
 
@@ -87,6 +87,21 @@ def test_truncated_file_is_reported_and_the_others_are_read(duty_cycled):
     assert "truncated" in dep.faults[0].error
     # The gap left by the bad file is a gap in the effort too.
     assert dep.recorded_s == pytest.approx(180.0)
+
+
+def test_truncated_flac_is_a_fault_of_the_listing(tmp_path):
+    # docs/formats.md §1: a FLAC that loses sync is a truncated file, listed with its reason
+    # and left out. Its header still states the full length, so only decoding its end shows it.
+    t0 = datetime(2031, 5, 4, 6, 0, 0)
+    paths = write_files(tmp_path, [t0 + timedelta(minutes=k) for k in range(3)], 60.0, ext="flac")
+    manifest = write_manifest(tmp_path, glob="*.flac")
+    assert len(load_deployment(manifest).files) == 3 and load_deployment(manifest).faults == []
+    paths[1].write_bytes(paths[1].read_bytes()[: paths[1].stat().st_size // 2])
+    dep = load_deployment(manifest)
+    assert [f.name for f in dep.files] == [paths[0].name, paths[2].name]
+    assert [f.name for f in dep.faults] == [paths[1].name] and dep.faults[0].error.startswith("truncated")
+    # Its minute is a gap in the effort (two 60 s files with a 60 s hole).
+    assert dep.recorded_s == pytest.approx(120.0) and [g.seconds for g in dep.gaps()] == [pytest.approx(60.0)]
 
 
 def test_wrong_rate_file_is_a_fault(duty_cycled):

@@ -53,7 +53,7 @@ def test_average_precision_equals_sklearn_on_a_ranked_list():
 
 def test_missed_calls_count_at_every_threshold():
     # Four more calls that no detection reaches: recall can only reach 4/8, and the
-    # area is sklearn's AP over the detections scaled by the fraction found (SPEC §6).
+    # area is sklearn's AP over the detections scaled by the fraction found (docs/evaluation.md §2).
     y, conf, key = Y, CONF, KEY
     det, truth = _ranked_case()
     truth += [(key, 500.0 + 10 * i, 501.0 + 10 * i) for i in range(4)]
@@ -68,6 +68,8 @@ def test_missed_calls_count_at_every_threshold():
 
 
 def test_matching_needs_same_label_and_file_and_respects_tolerance():
+    # Worked by hand from the rule of docs/evaluation.md §1: same label, same file, overlap
+    # with the call widened by the tolerance on each side; most confident first.
     a, b = ("dep", "a.wav", "upsweep"), ("dep", "a.wav", "click")
     c = ("dep", "b.wav", "upsweep")
     truth = [(a, 10.0, 12.0)]
@@ -83,11 +85,13 @@ def test_matching_needs_same_label_and_file_and_respects_tolerance():
 
 def test_matching_is_one_to_one_with_overlapping_calls():
     k = ("dep", "a.wav", "upsweep")
-    # Two overlapping calls, 10-14 s and 12-16 s; three detections.
+    # Worked by hand from docs/evaluation.md §1 (one-to-one, largest overlap with the call
+    # widened by 0.5 s): two overlapping calls, 10-14 s and 12-16 s (widened 9.5-14.5 and
+    # 11.5-16.5); three detections.
     truth = [(k, 10.0, 14.0), (k, 12.0, 16.0)]
     det = [
-        (k, 12.5, 16.0, 0.9),  # overlaps the second more: takes it
-        (k, 11.0, 15.0, 0.8),  # the second is taken: takes the first
+        (k, 12.5, 16.0, 0.9),  # overlaps 2.0 s of the first, 3.5 s of the second: takes the second
+        (k, 11.0, 15.0, 0.8),  # the second is taken: takes the first (3.5 s)
         (k, 10.0, 14.0, 0.7),  # both taken: a false positive
     ]
     m, curve, ap = _ap_of(det, truth)
@@ -102,6 +106,10 @@ def test_matching_is_one_to_one_with_overlapping_calls():
 
 
 def test_threshold_table_counts_at_or_above():
+    # Worked by hand from docs/evaluation.md §2 (a detection counts at t when its confidence
+    # is >= t): at 0.4, 4 detections of which 3 true, precision 3/4, recall 3/5 of 5 calls;
+    # F1 the harmonic mean 2PR/(P+R), as sklearn.metrics.f1_score; nothing at 0.95, so
+    # precision is undefined (NaN, where sklearn warns and returns 0).
     conf = np.array([0.9, 0.8, 0.8, 0.4, 0.2])
     ok = np.array([True, True, False, True, False])
     t = threshold_table(conf, ok, n_truth=5, thresholds=np.array([0.0, 0.4, 0.8, 0.95]))
@@ -139,7 +147,9 @@ def test_bootstrap_is_wider_when_calls_cluster_in_hours():
 
 
 def test_hour_presence_on_a_duty_cycled_day():
-    # A day recorded 10 minutes every second hour: 12 hours hold effort (0, 2, ..., 22).
+    # Worked by hand from docs/evaluation.md §2 "Hour presence" (a clock hour with effort is
+    # present when a call starts in it, detected when a detection does; only hours with
+    # effort count). A day recorded 10 minutes every second hour: 12 hours hold effort (0, 2, ..., 22).
     effort = np.arange(0, 24, 2)
     # Calls start in hours 2, 6, 6, 10; detections at the threshold in 2, 10, 14.
     calls = np.array([2, 6, 6, 10])
@@ -163,6 +173,8 @@ def test_wilson_interval_matches_published_values():
 
 
 def test_recall_by_bin_counts_each_call_once():
+    # Worked by hand from docs/evaluation.md §2 (calls, calls found and recall per bin) and
+    # recall_by_bin's docstring (values outside the edges go to the end bins, NaN is left out).
     snr = np.array([-12.0, -3.0, -1.0, 2.0, 4.0, 9.0, 25.0, np.nan])
     found = np.array([False, False, True, True, True, True, True, False])
     r = recall_by_bin(snr, found, np.array([-10.0, 0.0, 5.0, 10.0]))
@@ -174,7 +186,7 @@ def test_recall_by_bin_counts_each_call_once():
 
 
 def _brute_force_match(dk, ds, de, dc, tk, ts, te, tol):
-    """SPEC §6 read literally: one detection at a time, over every call."""
+    """docs/evaluation.md §1 read literally: one detection at a time, over every call."""
     order = sorted(range(len(dk)), key=lambda i: (-dc[i], ds[i], i))
     taken, match = set(), [-1] * len(dk)
     for i in order:

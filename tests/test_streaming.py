@@ -32,17 +32,44 @@ def test_int16_convention_of_soundfile(tmp_path):
     np.testing.assert_array_equal(block.samples, np.array([0.999969482421875, -1.0, 0.0], dtype=np.float32))
 
 
-def test_truncated_wav_and_flac_are_reported(tmp_path):
+def _cut(tmp_path, ext):
+    """A 20 s file cut to the first half of its bytes, as a copy that stopped short."""
     x = np.random.default_rng(1).normal(0, 0.1, 40000)
-    for ext in ("wav", "flac"):
-        good = tmp_path / f"good.{ext}"
-        sf.write(good, x, 2000, subtype="PCM_16")
-        data = good.read_bytes()
-        cut = tmp_path / f"cut.{ext}"
-        cut.write_bytes(data[: len(data) // 2])
-        with pytest.raises(AudioReadError, match="truncated|read failed|cannot open"):
-            audio_info(cut)
-            list(read_blocks(cut, 4096))
+    good = tmp_path / f"good.{ext}"
+    sf.write(good, x, 2000, subtype="PCM_16")
+    data = good.read_bytes()
+    cut = tmp_path / f"cut.{ext}"
+    cut.write_bytes(data[: len(data) // 2])
+    return cut
+
+
+_WAV_CUT_READS_SHORT = (
+    "read_blocks trusts libsndfile's frame count, which libsndfile quietly shortens for a WAV whose "
+    "data ends early; only audio_info compares it with the RIFF header (features/streaming.py)"
+)
+_FLAC_HEADER_SAYS_ALL = (
+    "audio_info reads only the header, and a FLAC's header states the whole stream's length: a FLAC cut "
+    "short shows only when its end is decoded (load_deployment decodes it since deployment._check_flac_end)"
+)
+
+
+@pytest.mark.parametrize(
+    "ext", [pytest.param("wav", marks=pytest.mark.xfail(strict=True, reason=_WAV_CUT_READS_SHORT)), "flac"]
+)
+def test_truncated_file_is_reported_by_read_blocks(tmp_path, ext):
+    cut = _cut(tmp_path, ext)
+    with pytest.raises(AudioReadError, match="truncated|read failed"):
+        list(read_blocks(cut, 4096))
+
+
+@pytest.mark.parametrize(
+    "ext", ["wav", pytest.param("flac", marks=pytest.mark.xfail(strict=True, reason=_FLAC_HEADER_SAYS_ALL))]
+)
+def test_truncated_file_is_reported_by_audio_info(tmp_path, ext):
+    cut = _cut(tmp_path, ext)
+    # _cut wrote 40,000 samples: the header still declares them all.
+    with pytest.raises(AudioReadError, match="truncated: header says 40000 samples"):
+        audio_info(cut)
 
 
 def test_unreadable_file_and_missing_channel(tmp_path):
