@@ -54,6 +54,8 @@ def _same(a, b):
 
 def test_pick_detections_keeps_two_nearby_calls_apart():
     # Two calls a few windows apart, with a dip between: two detections; one broad rise: one.
+    # Expected windows worked by hand from the rule in README "Detections and the store":
+    # local maxima >= floor with prominence >= floor / 2 (scipy.signal.find_peaks semantics).
     p = np.array([0.0, 0.2, 0.9, 0.95, 0.3, 0.05, 0.4, 0.85, 0.2, 0.0, 0.5, 0.6, 0.7, 0.6, 0.5, 0.0])
     proba = np.column_stack([1 - p, p])
     seg = np.column_stack([np.arange(p.size) * 0.5, np.arange(p.size) * 0.5 + 1.0])
@@ -67,7 +69,8 @@ def test_pick_detections_keeps_two_nearby_calls_apart():
 def test_pick_detections_keeps_one_of_two_peaks_on_the_same_trace():
     # Two peaks (a dip between) whose windows both see the same trace at 10.0-11.2 s and
     # 10.2-11.2 s: one call, kept once at the more confident peak; a third peak on a
-    # trace that shares only 0.2 s of 1 s with it stays.
+    # trace that shares only 0.2 s of 1 s with it stays. Worked by hand: overlap over the
+    # shorter interval > 0.5 is one call (non-maximum suppression; 0.5 is common practice).
     p = np.array([0.0, 0.6, 0.2, 0.9, 0.1, 0.0, 0.7, 0.0])
     proba = np.column_stack([1 - p, p])
     seg = np.array([[0, 1], [10.0, 11.2], [10, 11], [10.2, 11.2], [10, 11], [0, 1], [11.0, 12.0], [0, 1]])
