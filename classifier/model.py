@@ -119,9 +119,11 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         def one(cal, column):
             if isinstance(cal, IsotonicRegression):
                 # An isotonic fit is a staircase: dozens of windows would share its top
-                # step and lose their order. A small share of the raw score makes the
-                # map strictly increasing (it moves no probability by more than _TIE_BREAK).
-                return (1.0 - _TIE_BREAK) * cal.predict(column) + _TIE_BREAK * column
+                # step and lose their order. A small share of a non-saturating function
+                # of the raw score (arctangent of its log-odds: a raw score of 1 - 1e-9
+                # still ranks above 1 - 1e-8) makes the map strictly increasing; it moves
+                # no probability by more than _TIE_BREAK.
+                return (1.0 - _TIE_BREAK) * cal.predict(column) + _TIE_BREAK * _rank_share(column)
             return cal.predict_proba(_logit(column)[:, None])[:, 1]
 
         if len(self.classes_) == 2:
@@ -188,6 +190,13 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     def predict(self, X: np.ndarray) -> np.ndarray:
         """The most probable class of each row."""
         return self.classes_[np.argmax(self.predict_proba(X), axis=1)]
+
+
+def _rank_share(p: np.ndarray) -> np.ndarray:
+    """A strictly increasing map of probabilities onto (0, 1) that does not saturate near 0 or 1."""
+    p = np.clip(np.asarray(p, dtype=np.float64), 1e-300, 1.0)
+    log_odds = np.log(p) - np.log1p(-np.minimum(p, 1.0 - 2**-53))
+    return 0.5 + np.arctan(log_odds / 8.0) / np.pi
 
 
 def _logit(p: np.ndarray) -> np.ndarray:

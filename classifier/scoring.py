@@ -251,7 +251,8 @@ def _score_file(
                     round(c.low_hz, 2),
                     round(c.high_hz, 2),
                     c.label,
-                    round(c.confidence, 6),
+                    # Not rounded: confidences must keep their order, however close.
+                    float(c.confidence),
                     round(rl, 3),
                     None if not np.isfinite(snr) else round(snr, 3),
                     clipped,

@@ -78,3 +78,17 @@ def test_grouping_that_cannot_group_says_so():
     groups, described = resolve_groups(_keys([("one.wav", t0, 1200.0)]), "hour", folds=4)
     assert np.unique(groups).size == 1
     assert described.startswith("none:") and "ungrouped" in described
+
+
+def test_tie_break_does_not_saturate_near_certainty():
+    # A boosted model's raw probabilities crowd against 1 (log-odds 20 → 1 - 2e-9): the
+    # tie-break must still order them, and survive storage as a float64 (IEEE 754 double).
+    from callsieve.classifier.model import _TIE_BREAK, _rank_share
+
+    log_odds = np.array([-30.0, -5.0, 0.0, 5.0, 15.0, 25.0, 33.0, 35.0])
+    p = 1.0 / (1.0 + np.exp(-log_odds))
+    share = _rank_share(p)
+    assert np.all(np.diff(share) > 0)
+    stored = (1.0 - _TIE_BREAK) * 1.0 + _TIE_BREAK * share  # an isotonic plateau at 1.0
+    assert np.unique(stored).size == stored.size
+    assert share.min() > 0.0 and share.max() < 1.0
