@@ -12,6 +12,13 @@ Everything here is made up. An invented survey watches one invented call type, t
 Pressure is generated in µPa and passed through each recorder's own chain. Calls are
 emitted at a source level, propagated with the project's spreading and absorption
 functions from a random range, with a surface-reflected copy, and come in bouts.
+
+``write_scenario(..., preset="hard")`` writes another invented scenario instead, a
+benchmark of generalisation (``write_hard_scenario``; ``benchmarks/generalisation.py``):
+in-band transients, an ambient level that swings 10 dB within an hour, an in-band
+sweeping animal four times as common at the test site, target calls with harmonics,
+fades and jitter, incomplete and jittered labels on a small training set, and a test
+site with other noise and another recorder.
 """
 
 from __future__ import annotations
@@ -32,12 +39,31 @@ from callsieve.features.synthesis import (
     call_frequency_hz,
     call_waveform,
     coloured_noise,
+    flow_surge,
+    harmonic_call_waveform,
+    level_track_db,
     shipping_psd_db,
+    snap_waveform,
+    strum_waveform,
     surface_reflection,
+    tonal_burst,
     wind_psd_db,
 )
 
-__all__ = ["CallType", "RecorderSite", "CALL_TYPES", "TARGET_LABEL", "demo_sites", "write_scenario"]
+__all__ = [
+    "CallType",
+    "RecorderSite",
+    "CALL_TYPES",
+    "TARGET_LABEL",
+    "demo_sites",
+    "write_scenario",
+    "PRESETS",
+    "HardCallType",
+    "HardSite",
+    "HARD_CALL_TYPES",
+    "hard_sites",
+    "write_hard_scenario",
+]
 
 TARGET_LABEL = "tarsel-upsweep"
 SIMULATED_NOTE = "invented scenario: synthetic audio, invented sites, animals and recorders"
@@ -526,7 +552,7 @@ def _write_csv(path: Path, rows: list[dict], columns: list[str]) -> None:
         w.writerows(rows)
 
 
-def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> dict:
+def write_scenario(out_dir: str | Path, seed: int = 7, hours: float | None = None, preset: str = "demo") -> dict:
     """Write the invented scenario under ``out_dir``; return a summary.
 
     Parameters
@@ -536,6 +562,9 @@ def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> d
         The same seed gives the same files, sample for sample.
     hours : float, h
         Span of the survey deployment; the training deployment spans half of it.
+        Default 12 (``preset="hard"``: see :func:`write_hard_scenario`, default 5).
+    preset : {'demo', 'hard'}
+        'hard' writes the hard benchmark scenario instead (:func:`write_hard_scenario`).
 
     Returns
     -------
@@ -544,6 +573,12 @@ def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> d
         ``calls_table`` (paths), ``calls`` (count per site and label), ``snr_db``
         (percentiles of the target's SNR at the survey site).
     """
+    if preset not in PRESETS:
+        raise ValueError(f"preset must be one of {', '.join(PRESETS)}, got {preset!r}")
+    if preset == "hard":
+        return write_hard_scenario(out_dir, seed, HARD_DEFAULT_HOURS if hours is None else hours)
+    if hours is None:
+        hours = 12.0
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     if hours <= 0:
@@ -584,6 +619,569 @@ def write_scenario(out_dir: str | Path, seed: int = 7, hours: float = 12.0) -> d
                 if k not in ("hydrophone", "preamp")
             }
             for t in truths
+        ],
+    }
+    (out / "scenario.json").write_text(json.dumps(summary, indent=2))
+    return summary
+
+
+# ---------------------------------------------------------------------------------------
+# The hard preset: what real seafloor recordings have and the demo lacks.
+#
+# ``write_scenario(out, seed, preset="hard")`` writes a training site and a test site
+# with transients in the band (grunts, strums, flow-noise surges, snaps), an ambient
+# level that swings 10 dB from trough to peak within an hour, an animal that sweeps in
+# the target's band four times as often at the test site, target calls with harmonics,
+# fades and jitter, incomplete and time-jittered labels at the training site, a small
+# training set, and a test site with other noise and another recorder. Everything is
+# invented, as in the demo.
+# ---------------------------------------------------------------------------------------
+
+PRESETS = ("demo", "hard")
+HARD_TRAINING_FRACTION = 0.3  # the training site spans this fraction of the test site's hours
+HARD_DEFAULT_HOURS = 5.0
+
+
+@dataclass(frozen=True)
+class HardCallType:
+    """A call type of the hard preset: a :class:`CallType` plus harmonics and fades.
+
+    ``call``'s ranges are the per-call jitter (start and end frequency, duration); its
+    ``harmonic_db`` is not used. ``harmonics_db`` gives, for harmonics 2, 3, ..., the
+    range (dB re the fundamental) each call's level is drawn from; ``fade_db`` is the
+    standard deviation (dB) of the four knots of each call's amplitude envelope, to which
+    a random linear fade of up to ±1.5 ``fade_db`` from start to end is added.
+    """
+
+    call: CallType
+    harmonics_db: tuple[tuple[float, float], ...] = ()
+    fade_db: float = 0.0
+
+    @property
+    def label(self) -> str:
+        return self.call.label
+
+
+HARD_CALL_TYPES = (
+    # The target, a baleen-whale-like upsweep: 60 -> 200 Hz in 1.3 s, start and end
+    # frequency ±10 %, duration ±20 %, a second and a third harmonic, fading.
+    HardCallType(
+        CallType(
+            TARGET_LABEL,
+            "sweep",
+            (54.0, 66.0),
+            (180.0, 220.0),
+            (1.04, 1.56),
+            (0.7, 1.4),
+            source_level_db=189.0,
+            source_level_sd_db=5.0,
+            bouts_per_hour=2.0,
+            bout_minutes=(4.0, 12.0),
+            call_interval_s=30.0,
+        ),
+        harmonics_db=((-12.0, -6.0), (-20.0, -12.0)),
+        fade_db=4.0,
+    ),
+    # Another animal sweeping in the target's band: a slow long upsweep and a short one.
+    HardCallType(
+        CallType(
+            "vesk-rise",
+            "sweep",
+            (63.0, 77.0),
+            (126.0, 154.0),
+            (2.0, 3.0),
+            (0.9, 1.1),
+            source_level_db=182.0,
+            bouts_per_hour=0.6,
+            bout_minutes=(3.0, 8.0),
+            call_interval_s=30.0,
+        ),
+        harmonics_db=((-16.0, -10.0),),
+        fade_db=2.0,
+    ),
+    HardCallType(
+        CallType(
+            "vesk-yip",
+            "sweep",
+            (85.0, 105.0),
+            (150.0, 190.0),
+            (0.32, 0.48),
+            (0.8, 1.2),
+            source_level_db=180.0,
+            bouts_per_hour=0.6,
+            bout_minutes=(3.0, 8.0),
+            call_interval_s=30.0,
+        ),
+        fade_db=2.0,
+    ),
+    # The demo's other call types, unchanged but for a little fading.
+    *(HardCallType(c, ((c.harmonic_db, c.harmonic_db),) if c.harmonic_db > -60 else (), 2.0) for c in CALL_TYPES[1:]),
+)
+
+CONFUSER_LABELS = ("vesk-rise", "vesk-yip")
+
+
+@dataclass(frozen=True)
+class HardSite:
+    """One site of the hard preset: a recorder and what its recordings hold besides calls.
+
+    Levels in dB re 1 µPa (rms unless stated), rates per hour, times in s.
+
+    ``level_swing_db`` is the peak-to-trough swing of a sinusoid of the ambient level
+    with period ``level_period_s`` (random phase), to which a random walk of standard
+    deviation ``level_walk_db`` per 30 minutes is added. ``rate_factors`` multiply the
+    bout rates of the call types they name. ``target_calls`` (training) fixes the number
+    of target calls written to a random count in that range. At the training site,
+    ``faint_missed`` of the calls below ``faint_snr_db`` SNR (of each label) go
+    unlabelled, and every label's start and end move by up to ±``label_jitter_s``.
+    """
+
+    recorder: RecorderSite
+    wind_mps: tuple[float, float]
+    level_swing_db: float = 10.0
+    level_period_s: float = 7200.0
+    level_walk_db: float = 1.0
+    grunt_trains_per_hour: float = 0.0
+    strums_per_hour: float = 0.0
+    surges_per_hour: float = 0.0
+    snaps_per_hour: float = 0.0
+    rate_factors: tuple[tuple[str, float], ...] = ()
+    target_calls: tuple[int, int] | None = None
+    faint_snr_db: float = 0.0
+    faint_missed: float = 0.0
+    label_jitter_s: float = 0.0
+
+    def rate_factor(self, label: str) -> float:
+        return dict(self.rate_factors).get(label, 1.0)
+
+
+def hard_sites() -> tuple[HardSite, HardSite]:
+    """The two invented sites of the hard preset: training, then test."""
+    reed = RecorderSite(
+        name="reed-bank",
+        role="training",
+        start_utc=datetime(2032, 5, 6, 5, 15, 0, tzinfo=UTC),  # 1.5 h: two clock hours of 45 min
+        sample_rate_hz=2000,
+        extension="wav",
+        subtype="PCM_16",
+        full_scale_volts=2.5,
+        hydrophone=ResponseCurve.flat(-170.0),
+        preamp=ResponseCurve.flat(40.0),
+        tables=False,
+        file_s=1800.0,
+        cycle_s=1800.0,
+        span_fraction=HARD_TRAINING_FRACTION,
+        depth_m=80.0,
+        temperature_c=10.0,
+        shipping=0.35,
+        ships_per_hour=0.0,  # away from the lanes: distant shipping only
+        transients_per_hour=20.0,
+        electronic_tone_hz=50.0,
+        electronic_tone_dbfs=-70.0,
+        max_range_m=20000.0,
+        prefix="RB",
+    )
+    ash = RecorderSite(
+        name="ash-trench",
+        role="survey",
+        start_utc=datetime(2032, 6, 20, 21, 0, 0, tzinfo=UTC),
+        sample_rate_hz=3000,
+        extension="flac",
+        subtype="PCM_24",
+        full_scale_volts=1.0,
+        hydrophone=ResponseCurve(
+            np.array([5.0, 50.0, 500.0, 1500.0]),
+            np.array([-168.0, -166.5, -165.5, -166.0]),
+        ),
+        # A preamplifier whose gain climbs 20 dB from 10 to 100 Hz and rolls off near Nyquist.
+        preamp=ResponseCurve(
+            np.array([2.0, 10.0, 30.0, 100.0, 300.0, 1000.0, 1500.0]),
+            np.array([2.0, 6.0, 17.0, 26.0, 27.0, 26.0, 22.0]),
+        ),
+        tables=True,
+        file_s=1800.0,
+        cycle_s=1800.0,
+        span_fraction=1.0,
+        depth_m=250.0,
+        temperature_c=5.0,
+        shipping=0.75,
+        ships_per_hour=0.2,
+        transients_per_hour=40.0,
+        electronic_tone_hz=118.75,
+        electronic_tone_dbfs=-62.0,
+        max_range_m=15000.0,
+        prefix="AT",
+    )
+    training = HardSite(
+        reed,
+        wind_mps=(6.0, 12.0),
+        grunt_trains_per_hour=15.0,
+        strums_per_hour=10.0,
+        surges_per_hour=6.0,
+        snaps_per_hour=600.0,
+        target_calls=(30, 50),
+        faint_snr_db=0.0,
+        faint_missed=0.3,
+        label_jitter_s=0.2,
+    )
+    test = HardSite(
+        ash,
+        wind_mps=(2.0, 6.0),
+        grunt_trains_per_hour=40.0,
+        strums_per_hour=25.0,
+        surges_per_hour=15.0,
+        snaps_per_hour=1800.0,
+        rate_factors=tuple((label, 4.0) for label in CONFUSER_LABELS),
+    )
+    return training, test
+
+
+@dataclass
+class _HardCall(_Call):
+    harmonics_db: tuple[float, ...]
+    envelope_db: tuple[float, ...]
+
+
+def _fits_in_a_file(site: RecorderSite, span_s: float, time_s: float, duration_s: float) -> bool:
+    """Whether a call lies inside one file with 0.5 s to spare (as the demo writes calls)."""
+    k = np.floor(time_s / site.cycle_s)
+    file_start = k * site.cycle_s
+    file_end = min(file_start + site.file_s, span_s)
+    if file_end - file_start < 10.0:  # too short a file to be written
+        return False
+    return bool(time_s >= file_start + 0.5 and time_s + duration_s + 0.5 <= file_end)
+
+
+def _plan_hard_bout(
+    htype: HardCallType, site: RecorderSite, span_s: float, bout_id: int, rng: np.random.Generator
+) -> list[_HardCall]:
+    ctype = htype.call
+    start = rng.uniform(0.0, span_s)
+    length = 60.0 * _uniform(rng, ctype.bout_minutes)
+    bout_range = site.max_range_m * np.sqrt(rng.uniform(0.003, 1.0))
+    depth = rng.uniform(10.0, 40.0)
+    calls = []
+    t = start
+    while t < min(start + length, span_s):
+        shape = CallShape(
+            ctype.kind,
+            _uniform(rng, ctype.f0_hz),
+            _uniform(rng, ctype.f1_hz),
+            _uniform(rng, ctype.duration_s),
+            curvature=_uniform(rng, ctype.curvature),
+            wobble_hz=_uniform(rng, ctype.wobble_hz),
+            wobble_rate_hz=rng.uniform(0.5, 1.5),
+        )
+        harmonics = tuple(round(_uniform(rng, b), 2) for b in htype.harmonics_db)
+        knots = rng.normal(0.0, htype.fade_db, 4) + np.linspace(0.0, 1.0, 4) * rng.uniform(-1.5, 1.5) * htype.fade_db
+        envelope = tuple(np.round(knots - knots.mean(), 2).tolist()) if htype.fade_db > 0 else ()
+        calls.append(
+            _HardCall(
+                ctype.label,
+                t,
+                shape,
+                float(rng.normal(ctype.source_level_db, ctype.source_level_sd_db)),
+                float(bout_range),
+                depth,
+                bout_id,
+                harmonics,
+                envelope,
+            )
+        )
+        step = shape.duration_s + 2.0 + rng.exponential(ctype.call_interval_s)
+        t += step
+        bout_range = max(200.0, bout_range + rng.normal(0.0, 1.5 * step))
+    return [c for c in calls if _fits_in_a_file(site, span_s, c.time_s, c.shape.duration_s)]
+
+
+def _plan_hard_calls(hsite: HardSite, span_s: float, rng: np.random.Generator) -> list[_HardCall]:
+    """Calls of every hard call type at one site, in bouts, each inside one file.
+
+    Where ``hsite.target_calls`` is set, target bouts are drawn until a count drawn from
+    that range is reached, and the last bout is cut there.
+    """
+    site = hsite.recorder
+    calls: list[_HardCall] = []
+    bout_id = 0
+    for htype in HARD_CALL_TYPES:
+        if htype.label == TARGET_LABEL and hsite.target_calls is not None:
+            want = int(rng.integers(hsite.target_calls[0], hsite.target_calls[1] + 1))
+            planned: list[_HardCall] = []
+            for _ in range(1000):
+                if len(planned) >= want:
+                    break
+                bout_id += 1
+                planned += _plan_hard_bout(htype, site, span_s, bout_id, rng)
+            calls += planned[:want]
+            continue
+        rate = htype.call.bouts_per_hour * hsite.rate_factor(htype.label)
+        for _ in range(rng.poisson(rate * span_s / 3600.0)):
+            bout_id += 1
+            calls += _plan_hard_bout(htype, site, span_s, bout_id, rng)
+    calls.sort(key=lambda c: c.time_s)
+    return calls
+
+
+def _hard_level_track(hsite: HardSite, span_s: float, rng: np.random.Generator):
+    """The ambient level's offset (dB) as a function of time from the deployment's start."""
+    knots = np.arange(0.0, span_s + 3600.0, 1800.0)
+    walk = np.concatenate([[0.0], np.cumsum(rng.normal(0.0, hsite.level_walk_db, knots.size - 1))])
+    phase = float(rng.uniform(0.0, 2 * np.pi))
+
+    def track(t_s: np.ndarray) -> np.ndarray:
+        return level_track_db(t_s, hsite.level_swing_db, hsite.level_period_s, phase, knots, walk)
+
+    return track
+
+
+def _hard_wind_track(hsite: HardSite, span_s: float, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """Wind speed (m/s) every 30 minutes within the site's range: a slow walk of the weather."""
+    lo, hi = np.sqrt(hsite.wind_mps[0]), np.sqrt(hsite.wind_mps[1])
+    knots = np.arange(0.0, span_s + 3600.0, 1800.0)
+    walk = np.cumsum(rng.normal(0.0, 0.2, knots.size)) + rng.uniform(lo, hi)
+    return knots, np.clip(walk, lo, hi) ** 2
+
+
+def _hard_transients(hsite: HardSite, n: int, rng: np.random.Generator) -> np.ndarray:
+    """Knocks, snaps, grunt trains, strums and flow-noise surges over one file, µPa."""
+    site = hsite.recorder
+    fs = site.sample_rate_hz
+    hours = n / fs / 3600.0
+    out = np.zeros(n)
+
+    def add(i0: int, piece: np.ndarray) -> None:
+        m = min(piece.size, n - i0)
+        if m > 0:
+            out[i0 : i0 + m] += piece[:m]
+
+    # Knocks (as in the demo) and snaps: short broadband clicks, peak levels.
+    for _ in range(rng.poisson(site.transients_per_hour * hours)):
+        tau = rng.uniform(0.003, 0.015)
+        m = int(8 * tau * fs) + 1
+        peak = 10.0 ** (rng.uniform(112.0, 136.0) / 20.0)
+        add(int(rng.integers(0, n)), peak * rng.standard_normal(m) * np.exp(-np.arange(m) / (tau * fs)))
+    for _ in range(rng.poisson(hsite.snaps_per_hour * hours)):
+        peak = 10.0 ** (rng.uniform(110.0, 134.0) / 20.0)
+        ring = rng.uniform(150.0, 0.4 * fs)
+        add(int(rng.integers(0, n)), snap_waveform(fs, peak, ring, rng.uniform(2e-4, 1.5e-3), rng))
+    # Grunts: trains of 1-6 short low tonal bursts.
+    for _ in range(rng.poisson(hsite.grunt_trains_per_hour * hours)):
+        i = int(rng.integers(0, n))
+        for _ in range(int(rng.integers(1, 7))):
+            d = rng.uniform(0.1, 0.3)
+            f0 = rng.uniform(60.0, 160.0)
+            amp = np.sqrt(2.0) * 10.0 ** (rng.uniform(100.0, 125.0) / 20.0)
+            t = np.arange(int(d * fs) + 1) / fs
+            add(i, tonal_burst(t, f0, f0 * rng.uniform(0.8, 1.05), d, amp, harmonic_db=-10.0))
+            i += int((d + rng.uniform(0.25, 0.8)) * fs)
+    # Strums: a few harmonics buzzing for about half a second.
+    for _ in range(rng.poisson(hsite.strums_per_hour * hours)):
+        d = rng.uniform(0.4, 0.7)
+        t = np.arange(int(d * fs) + 1) / fs
+        amp = np.sqrt(2.0) * 10.0 ** (rng.uniform(100.0, 122.0) / 20.0)
+        wave = strum_waveform(t, rng.uniform(35.0, 75.0), d, amp, int(rng.integers(3, 6)), rng.uniform(8.0, 25.0))
+        add(int(rng.integers(0, n)), wave)
+    # Flow noise: low-frequency broadband surges of 2-20 s.
+    for _ in range(rng.poisson(hsite.surges_per_hour * hours)):
+        m = int(rng.uniform(2.0, 20.0) * fs)
+        add(int(rng.integers(0, n)), flow_surge(m, fs, rng.uniform(105.0, 130.0), rng.uniform(10.0, 40.0), rng))
+    return out
+
+
+def _hard_call_pressure(call: _HardCall, t_rel: np.ndarray, site: RecorderSite, water: Seawater) -> np.ndarray:
+    """Direct plus surface-reflected arrival of one call with its harmonics and fades, µPa."""
+    r1, r2, delay = surface_reflection(call.range_m, call.source_depth_m, site.depth_m)
+    mean_hz = float(np.mean(call_frequency_hz(call.shape, np.linspace(0, call.shape.duration_s, 16))))
+    tl1 = float(transmission_loss_db(r1, mean_hz, water))
+    tl2 = float(transmission_loss_db(r2, mean_hz, water))
+    a1 = np.sqrt(2.0) * 10.0 ** ((call.source_level_db - tl1) / 20.0)
+    a2 = -0.9 * np.sqrt(2.0) * 10.0 ** ((call.source_level_db - tl2) / 20.0)
+    h, e = call.harmonics_db, call.envelope_db
+    return harmonic_call_waveform(call.shape, t_rel, a1, h, e) + harmonic_call_waveform(
+        call.shape, t_rel - delay, a2, h, e
+    )
+
+
+def _write_hard_site(hsite: HardSite, out: Path, hours: float, rng: np.random.Generator) -> SiteTruth:
+    site = hsite.recorder
+    folder = out / site.name
+    audio = folder / "audio"
+    audio.mkdir(parents=True, exist_ok=True)
+    span_s = hours * site.span_fraction * 3600.0
+    water = Seawater(site.temperature_c, 35.0, 8.0, site.depth_m)
+    calls = _plan_hard_calls(hsite, span_s, rng)
+    ships = _plan_ships(site, span_s, rng)
+    wind = _hard_wind_track(hsite, span_s, rng)
+    level = _hard_level_track(hsite, span_s, rng)
+    chain = _chain(site)
+    fs = site.sample_rate_hz
+    truth = SiteTruth(site, _write_manifest(site, folder))
+    full_scale = 1.0 - 2.0 ** -(15 if site.subtype == "PCM_16" else 23)
+    tone_amp = np.sqrt(2.0) * 10.0 ** (site.electronic_tone_dbfs / 20.0)
+    for file_start in np.arange(0.0, span_s, site.cycle_s):
+        n = int(round(min(site.file_s, span_s - file_start) * fs))
+        if n < fs * 10:
+            break
+        start_utc = site.start_utc + timedelta(seconds=float(file_start))
+        name = f"{site.prefix}_{start_utc:%Y%m%dT%H%M%SZ}.{site.extension}"
+        inside = [c for c in calls if file_start <= c.time_s < file_start + n / fs]
+        t_abs = file_start + np.arange(n) / fs
+        noise = _ambient_noise(site, file_start, n, ships, wind, rng) * 10.0 ** (level(t_abs) / 20.0)
+        noise += _hard_transients(hsite, n, rng)
+        pressure = noise.copy()
+        placed = []
+        for call in inside:
+            rel0 = call.time_s - file_start
+            i0 = max(int(np.floor((rel0 - 0.1) * fs)), 0)
+            i1 = min(int(np.ceil((rel0 + call.shape.duration_s + 0.2) * fs)), n)
+            p = _hard_call_pressure(call, np.arange(i0, i1) / fs - rel0, site, water)
+            pressure[i0:i1] += p
+            placed.append((call, p, slice(i0, i1)))
+        x = samples_from_pressure(pressure, fs, chain)
+        x += tone_amp * np.sin(2 * np.pi * site.electronic_tone_hz * t_abs)
+        clipped = np.abs(x) >= full_scale
+        np.clip(x, -1.0, full_scale, out=x)
+        sf.write(audio / name, x.astype(np.float32), fs, subtype=site.subtype)
+        truth.files.append({"file": name, "start_utc": start_utc, "duration_s": n / fs})
+        for call, p, seg in placed:
+            rel0 = call.time_s - file_start
+            lo_i, hi_i = int(round(rel0 * fs)), int(round((rel0 + call.shape.duration_s) * fs))
+            low, high = _band_of(call.shape)
+            rl = float(band_spl_db(p[lo_i - seg.start : hi_i - seg.start], fs, low, high))
+            nl = float(band_spl_db(noise[lo_i:hi_i], fs, low, high))
+            truth.calls.append(
+                {
+                    "deployment": site.name,
+                    "file": name,
+                    "start_s": round(rel0, 4),
+                    "end_s": round(rel0 + call.shape.duration_s, 4),
+                    "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
+                    "label": call.label,
+                    "low_hz": low,
+                    "high_hz": high,
+                    "source_level_db": round(call.source_level_db, 2),
+                    "range_m": round(call.range_m, 1),
+                    "source_depth_m": round(call.source_depth_m, 1),
+                    "received_level_db": round(rl, 2),
+                    "noise_level_db": round(nl, 2),
+                    "snr_db": round(rl - nl, 2),
+                    "clipped": int(bool(clipped[lo_i:hi_i].any())),
+                    "bout": call.bout,
+                    "harmonics_db": " ".join(f"{h:g}" for h in call.harmonics_db),
+                    "envelope_db": " ".join(f"{e:g}" for e in call.envelope_db),
+                    "labelled": 1,
+                }
+            )
+    return truth
+
+
+def _analyst_labels(hsite: HardSite, truth: SiteTruth, rng: np.random.Generator) -> list[dict]:
+    """The analysts' label table of a site: faint calls partly missed, boxes jittered in time.
+
+    Marks each row of ``truth.calls`` with ``labelled`` 0 or 1 and returns the label rows.
+    """
+    rows = truth.calls
+    missed: set[int] = set()
+    for label in sorted({r["label"] for r in rows}):
+        faint = [i for i, r in enumerate(rows) if r["label"] == label and r["snr_db"] < hsite.faint_snr_db]
+        k = int(round(hsite.faint_missed * len(faint)))
+        if k:
+            missed |= {faint[int(i)] for i in rng.choice(len(faint), size=k, replace=False)}
+    durations = {f["file"]: f["duration_s"] for f in truth.files}
+    labels = []
+    for i, r in enumerate(rows):
+        r["labelled"] = int(i not in missed)
+        if i in missed:
+            continue
+        j = hsite.label_jitter_s
+        start = max(0.0, r["start_s"] + rng.uniform(-j, j)) if j > 0 else r["start_s"]
+        end = min(durations[r["file"]], r["end_s"] + rng.uniform(-j, j)) if j > 0 else r["end_s"]
+        end = max(end, start + 0.1)
+        labels.append(r | {"start_s": round(start, 4), "end_s": round(end, 4)})
+    return labels
+
+
+HARD_CALL_COLUMNS = [*CALL_COLUMNS, "harmonics_db", "envelope_db", "labelled"]
+
+
+def write_hard_scenario(out_dir: str | Path, seed: int = 7, hours: float = HARD_DEFAULT_HOURS) -> dict:
+    """Write the hard preset under ``out_dir``; return a summary (the demo's keys and more).
+
+    Parameters
+    ----------
+    out_dir : str or Path
+    seed : int
+        The same seed gives the same files, sample for sample.
+    hours : float, h
+        Span of the test site (``ash-trench``); the training site (``reed-bank``) spans
+        ``HARD_TRAINING_FRACTION`` of it (1.5 h of 5 h by default).
+
+    Returns
+    -------
+    dict
+        As :func:`write_scenario`'s, plus ``preset``, ``training_truth`` (every call of
+        the training site, exact), ``labels`` (faint calls and how many went unlabelled)
+        and ``training_target_snr_db``. ``survey_*`` keys name the test site.
+    """
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    if hours <= 0:
+        raise ValueError("hours must be > 0")
+    root = np.random.default_rng([seed, 1])  # not the demo's stream: another scenario
+    site_rngs = root.spawn(3)
+    sites = hard_sites()
+    truths = [_write_hard_site(s, out, hours, r) for s, r in zip(sites, site_rngs[:2], strict=True)]
+    train, test = truths
+    labels = _analyst_labels(sites[0], train, site_rngs[2])
+    train_labels = train.manifest.parent / "labels.csv"
+    _write_csv(train_labels, labels, LABEL_COLUMNS)
+    train_truth = train.manifest.parent / "truth.csv"
+    _write_csv(train_truth, train.calls, LABEL_COLUMNS)
+    test_truth = test.manifest.parent / "truth.csv"
+    _write_csv(test_truth, test.calls, LABEL_COLUMNS)
+    calls_table = out / "calls.csv"
+    _write_csv(calls_table, train.calls + test.calls, HARD_CALL_COLUMNS)
+    counts = {
+        t.site.name: {h.label: sum(1 for r in t.calls if r["label"] == h.label) for h in HARD_CALL_TYPES}
+        for t in truths
+    }
+
+    def snr_percentiles(rows: list[dict]) -> dict:
+        snr = np.array([r["snr_db"] for r in rows if r["label"] == TARGET_LABEL])
+        return {f"p{q}": round(float(np.percentile(snr, q)), 1) for q in (10, 25, 50, 75, 90)} if snr.size else {}
+
+    faint = [r for r in train.calls if r["snr_db"] < sites[0].faint_snr_db]
+    summary = {
+        "note": SIMULATED_NOTE,
+        "preset": "hard",
+        "seed": seed,
+        "hours": hours,
+        "target_label": TARGET_LABEL,
+        "training_manifest": str(train.manifest),
+        "survey_manifest": str(test.manifest),
+        "training_labels": str(train_labels),
+        "training_truth": str(train_truth),
+        "survey_truth": str(test_truth),
+        "calls_table": str(calls_table),
+        "calls": counts,
+        "labelled": {h.label: sum(r["label"] == h.label for r in labels) for h in HARD_CALL_TYPES},
+        "labels": {
+            "faint_snr_db": sites[0].faint_snr_db,
+            "faint_calls": len(faint),
+            "faint_unlabelled": sum(1 for r in faint if not r["labelled"]),
+            "label_jitter_s": sites[0].label_jitter_s,
+        },
+        "files": {t.site.name: len(t.files) for t in truths},
+        "survey_target_snr_db": snr_percentiles(test.calls),
+        "training_target_snr_db": snr_percentiles(train.calls),
+        "sites": [
+            {
+                k: (v.isoformat() if isinstance(v, datetime) else v)
+                for k, v in asdict(h.recorder).items()
+                if k not in ("hydrophone", "preamp")
+            }
+            | {k: v for k, v in asdict(h).items() if k != "recorder"}
+            for h in sites
         ],
     }
     (out / "scenario.json").write_text(json.dumps(summary, indent=2))

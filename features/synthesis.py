@@ -22,6 +22,12 @@ __all__ = [
     "call_frequency_hz",
     "call_waveform",
     "surface_reflection",
+    "harmonic_call_waveform",
+    "tonal_burst",
+    "strum_waveform",
+    "flow_surge",
+    "snap_waveform",
+    "level_track_db",
 ]
 
 
@@ -188,3 +194,161 @@ def surface_reflection(
     r1 = float(np.hypot(horizontal_range_m, dz_direct))
     r2 = float(np.hypot(horizontal_range_m, dz_image))
     return r1, r2, (r2 - r1) / sound_speed_mps
+
+
+def harmonic_call_waveform(
+    shape: CallShape,
+    t_s: np.ndarray,
+    amplitude_upa: float = 1.0,
+    harmonics_db: tuple[float, ...] = (),
+    envelope_db: tuple[float, ...] = (),
+    taper: float = 0.3,
+) -> np.ndarray:
+    """Pressure of one call with several harmonics and a fading envelope, µPa; zero outside it.
+
+    Parameters
+    ----------
+    shape : CallShape
+        Its ``harmonic_db`` is ignored: ``harmonics_db`` gives every harmonic.
+    t_s : np.ndarray, s from the call's start
+    amplitude_upa : float, µPa, peak amplitude of the fundamental where the envelope is 0 dB
+    harmonics_db : tuple of float, dB re the fundamental, of harmonics 2, 3, ... in order
+    envelope_db : tuple of float, dB
+        Gains at equally spaced points from the call's start to its end, interpolated
+        linearly (in dB) between them and multiplied with the Tukey taper of
+        :func:`call_waveform`: a call that fades in, out or in the middle. Empty: 0 dB.
+    taper : float, fraction of the duration in the Tukey envelope's cosine ramps
+
+    Returns
+    -------
+    pressure : np.ndarray [shape=t_s.shape], µPa
+    """
+    t = np.asarray(t_s, dtype=float)
+    env = _tukey(t / shape.duration_s, taper)
+    phase = _phase(shape, t)
+    wave = np.sin(phase)
+    for k, level_db in enumerate(harmonics_db, start=2):
+        wave = wave + 10.0 ** (level_db / 20.0) * np.sin(k * phase)
+    wave = env * wave
+    if envelope_db:
+        knots = np.linspace(0.0, 1.0, len(envelope_db))
+        gain_db = np.interp(t / shape.duration_s, knots, np.asarray(envelope_db, dtype=float))
+        wave *= 10.0 ** (gain_db / 20.0)
+    return amplitude_upa * wave
+
+
+def _tukey(u: np.ndarray, taper: float) -> np.ndarray:
+    """The envelope of :func:`call_waveform` at relative times ``u`` (0 outside [0, 1])."""
+    env = np.zeros_like(u, dtype=float)
+    inside = (u >= 0.0) & (u <= 1.0)
+    ramp = taper / 2.0
+    env[inside] = 1.0
+    if ramp > 0:
+        rise = inside & (u < ramp)
+        fall = inside & (u > 1.0 - ramp)
+        env[rise] = 0.5 * (1.0 - np.cos(np.pi * u[rise] / ramp))
+        env[fall] = 0.5 * (1.0 - np.cos(np.pi * (1.0 - u[fall]) / ramp))
+    return env
+
+
+def tonal_burst(
+    t_s: np.ndarray,
+    f0_hz: float,
+    f1_hz: float,
+    duration_s: float,
+    amplitude_upa: float = 1.0,
+    harmonic_db: float = -100.0,
+) -> np.ndarray:
+    """A short low tonal burst (a fish-like grunt), µPa; zero outside [0, duration_s].
+
+    A linear glide from ``f0_hz`` to ``f1_hz`` under a Hann envelope, with a second
+    harmonic ``harmonic_db`` below the fundamental; ``amplitude_upa`` is the peak
+    amplitude of the fundamental.
+    """
+    t = np.asarray(t_s, dtype=float)
+    d = check_positive("duration_s", duration_s)
+    u = np.clip(t / d, 0.0, 1.0)
+    inside = (t >= 0.0) & (t <= d)
+    env = np.where(inside, np.sin(np.pi * u) ** 2, 0.0)
+    phase = 2 * np.pi * (f0_hz * t + 0.5 * (f1_hz - f0_hz) * d * u**2)
+    return amplitude_upa * env * (np.sin(phase) + 10.0 ** (harmonic_db / 20.0) * np.sin(2 * phase))
+
+
+def strum_waveform(
+    t_s: np.ndarray,
+    f0_hz: float,
+    duration_s: float,
+    amplitude_upa: float = 1.0,
+    n_harmonics: int = 4,
+    buzz_rate_hz: float = 12.0,
+) -> np.ndarray:
+    """A buzzing strum: ``n_harmonics`` harmonics of ``f0_hz`` (amplitude 1/k), µPa.
+
+    Amplitude-modulated at ``buzz_rate_hz`` (fully, raised cosine) under a Tukey envelope
+    (half the duration in ramps); ``amplitude_upa`` is the fundamental's peak amplitude.
+    Zero outside [0, duration_s].
+    """
+    t = np.asarray(t_s, dtype=float)
+    d = check_positive("duration_s", duration_s)
+    env = _tukey(t / d, 0.5) * 0.5 * (1.0 - np.cos(2 * np.pi * buzz_rate_hz * t))
+    wave = sum(np.sin(2 * np.pi * k * f0_hz * t + 0.7 * k) / k for k in range(1, n_harmonics + 1))
+    return amplitude_upa * env * wave
+
+
+def flow_surge(
+    n_samples: int,
+    sample_rate_hz: float,
+    level_db: float,
+    corner_hz: float,
+    rng: np.random.Generator,
+) -> np.ndarray:
+    """A low-frequency broadband surge (flow noise on the hydrophone), µPa.
+
+    Gaussian noise whose PSD is flat below ``corner_hz`` and falls 30 dB per decade
+    above it, under a Hann envelope over all ``n_samples``; ``level_db`` (dB re 1 µPa)
+    is the broadband rms level at the envelope's peak.
+    """
+    fs = check_positive("sample_rate_hz", sample_rate_hz)
+    f = np.fft.rfftfreq(n_samples, 1.0 / fs)
+    shape_db = -10.0 * np.log10(1.0 + (np.maximum(f, 0.5) / corner_hz) ** 3)
+    x = coloured_noise(n_samples, fs, shape_db, rng)
+    rms = float(np.sqrt(np.mean(x.astype(np.float64) ** 2))) or 1.0
+    env = np.sin(np.pi * (np.arange(n_samples) + 0.5) / n_samples) ** 2
+    return (10.0 ** (level_db / 20.0) / rms) * x * env
+
+
+def snap_waveform(
+    sample_rate_hz: float,
+    peak_upa: float,
+    ring_hz: float,
+    decay_s: float,
+    rng: np.random.Generator,
+) -> np.ndarray:
+    """One click (a snap): a decaying oscillation at ``ring_hz`` with a random phase, µPa.
+
+    Lasts six decay times; its first extremum is about ``peak_upa``.
+    """
+    fs = check_positive("sample_rate_hz", sample_rate_hz)
+    n = max(int(6 * decay_s * fs), 2)
+    t = np.arange(n) / fs
+    return peak_upa * np.exp(-t / decay_s) * np.cos(2 * np.pi * ring_hz * t + rng.uniform(0, 2 * np.pi))
+
+
+def level_track_db(
+    t_s: np.ndarray,
+    swing_db: float,
+    period_s: float,
+    phase_rad: float = 0.0,
+    walk_knots_s: np.ndarray | None = None,
+    walk_db: np.ndarray | None = None,
+) -> np.ndarray:
+    """A slowly moving level offset, dB: a sinusoid of ``swing_db`` peak to trough plus a walk.
+
+    ``swing_db / 2 * sin(2π t / period_s + phase_rad)``, plus the random walk given by its
+    values ``walk_db`` at times ``walk_knots_s`` (interpolated linearly), if any.
+    """
+    t = np.asarray(t_s, dtype=float)
+    out = 0.5 * swing_db * np.sin(2 * np.pi * t / check_positive("period_s", period_s) + phase_rad)
+    if walk_knots_s is not None and walk_db is not None:
+        out = out + np.interp(t, walk_knots_s, walk_db)
+    return out

@@ -1,0 +1,279 @@
+"""Generalisation to another site and recorder: the hard scenario, trained, scored and judged.
+
+Run: python benchmarks/generalisation.py [--seeds 1 2 3] [--hours 5] [--json OUT] [--folder DIR]
+
+For each seed, in a fresh temporary folder (or under `--folder`, kept):
+
+1. writes the hard preset of the invented scenario (`write_scenario(..., preset="hard")`):
+   a 1.5-hour training site (`reed-bank`, 2 kHz, 16-bit, flat calibration) with incomplete,
+   time-jittered labels and 30-50 target calls, and a 5-hour test site (`ash-trench`, 3 kHz,
+   24-bit, a frequency-dependent gain curve, other noise, another electronic tone, the
+   in-band sweeping `vesk` animal four times as common) with complete truth;
+2. `callsieve train --target tarsel-upsweep` on the training site (MLflow store in the folder);
+3. `callsieve score` of the test site (`--jobs`, default 2);
+4. `callsieve evaluate --complete-truth` against the test site's truth;
+
+each step a subprocess of the command line with BLAS/OpenMP threads set to 1 (so the
+numbers do not depend on thread scheduling), timed by wall clock. It prints, per seed and
+as mean / min / max: the target's average precision, its recall at precision 0.9, the
+floor-excess baseline's average precision, and the time of training and of scoring; then
+the demo-style survey figures (operating threshold, precision and recall there, hour
+presence, and how many calls of the in-band confusers the model took for the target).
+`--json OUT` writes every figure. A seed takes 1-1.5 minutes on 2 cores (scenario 15 s,
+training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+
+ONE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+CLI = [sys.executable, "-m", "callsieve.classifier.cli"]
+
+# Columns of the main table: key in the per-seed result, heading, format.
+MAIN = [
+    ("target_calls", "calls", "{:.0f}"),
+    ("average_precision", "AP", "{:.3f}"),
+    ("recall_at_precision_0.9", "R@P0.9", "{:.3f}"),
+    ("baseline_average_precision", "AP excess", "{:.3f}"),
+    ("training_s", "train s", "{:.1f}"),
+    ("scoring_s", "score s", "{:.1f}"),
+    ("seed_s", "seed s", "{:.0f}"),
+]
+SURVEY = [
+    ("operating_threshold", "threshold", "{:.2f}"),
+    ("operating_precision", "precision", "{:.3f}"),
+    ("operating_recall", "recall", "{:.3f}"),
+    ("f1_at_optimal", "best F1", "{:.3f}"),
+    ("hour_presence_precision", "hours P", "{:.2f}"),
+    ("hour_presence_recall", "hours R", "{:.2f}"),
+    ("confusers_taken_as_target", "vesk->target", "{:.0f}"),
+    ("confuser_calls", "vesk calls", "{:.0f}"),
+]
+
+
+def _cli(args: list[str], cwd: Path, log: Path) -> float:
+    """Run one callsieve verb; return its wall time (s). Output goes to ``log``."""
+    t0 = time.perf_counter()
+    with open(log, "a") as fh:
+        fh.write(f"$ callsieve {' '.join(args)}\n")
+        fh.flush()
+        done = subprocess.run(
+            [*CLI, *args], cwd=cwd, env=os.environ | ONE_THREAD, stdout=fh, stderr=subprocess.STDOUT, check=False
+        )
+    seconds = time.perf_counter() - t0
+    if done.returncode != 0:
+        raise SystemExit(f"callsieve {args[0]} failed (exit {done.returncode}); see {log}")
+    return seconds
+
+
+def run_seed(seed: int, folder: Path, hours: float, jobs: int) -> dict:
+    """Write, train, score and evaluate one seed of the hard scenario in ``folder``."""
+    from callsieve.classifier.scenario import CONFUSER_LABELS, write_scenario
+
+    t_seed = time.perf_counter()
+    scen = folder / "scenario"
+    t0 = time.perf_counter()
+    summary = write_scenario(scen, seed=seed, hours=hours, preset="hard")
+    scenario_s = time.perf_counter() - t0
+    target = summary["target_label"]
+    tracking = f"sqlite:///{(folder / 'mlflow.db').resolve()}"
+    log = folder / "log.txt"
+    model = folder / "model.skops"
+    db = folder / "detections.db"
+    out = folder / "evaluation"
+    training_s = _cli(
+        [
+            "train",
+            "--deployment",
+            summary["training_manifest"],
+            "--labels",
+            summary["training_labels"],
+            "--out",
+            str(model),
+            "--target",
+            target,
+            "--tracking-uri",
+            tracking,
+            "--experiment",
+            "generalisation",
+            "--quiet",
+        ],
+        folder,
+        log,
+    )
+    scoring_s = _cli(
+        ["score", str(model), "--deployment", summary["survey_manifest"], "--db", str(db), "--jobs", str(jobs)]
+        + ["--quiet"],
+        folder,
+        log,
+    )
+    evaluation_s = _cli(
+        [
+            "evaluate",
+            str(db),
+            "--truth",
+            summary["survey_truth"],
+            "--out",
+            str(out),
+            "--complete-truth",
+            "--tracking-uri",
+            tracking,
+            "--quiet",
+        ],
+        folder,
+        log,
+    )
+    metrics = json.loads((out / "metrics.json").read_text())
+    m = metrics["classes"][target]
+    op = m.get("operating") or {}
+    hp = m.get("hour_presence") or {}
+    confusion = metrics.get("confusion") or {}
+    taken, confuser_calls = _confusers_taken(confusion, target, CONFUSER_LABELS)
+    test_name = Path(summary["survey_manifest"]).parent.name
+    train_name = Path(summary["training_manifest"]).parent.name
+    return {
+        "seed": seed,
+        "target_calls": m["truth_calls"],
+        "training_target_calls": summary["calls"][train_name][target],
+        "training_target_labelled": summary["labelled"][target],
+        "average_precision": m["average_precision"],
+        # Where precision never reaches 0.9, no recall is reached at it: 0 (metrics.json: null).
+        "recall_at_precision_0.9": m["recall_at_target_precision"] or 0.0,
+        "precision_0.9_reached": m["recall_at_target_precision"] is not None,
+        "threshold_for_precision_0.9": m["threshold_for_target_precision"],
+        "baseline_average_precision": m["baseline"]["average_precision"],
+        "baseline_recall_at_precision_0.9": m["baseline"]["recall_at_target_precision"],
+        "operating_threshold": m["operating_threshold"],
+        "operating_precision": op.get("precision"),
+        "operating_recall": op.get("recall"),
+        "operating_recall_ci95": op.get("recall_ci95"),
+        "f1_at_optimal": m["f1_at_optimal"],
+        "hour_presence_precision": hp.get("precision"),
+        "hour_presence_recall": hp.get("recall"),
+        "confusers_taken_as_target": taken,
+        "confuser_calls": confuser_calls
+        if confuser_calls is not None
+        else sum(summary["calls"][test_name][c] for c in CONFUSER_LABELS),
+        "test_target_snr_db": summary["survey_target_snr_db"],
+        "scenario_s": round(scenario_s, 1),
+        "training_s": round(training_s, 1),
+        "scoring_s": round(scoring_s, 1),
+        "evaluation_s": round(evaluation_s, 1),
+        "seed_s": round(time.perf_counter() - t_seed, 1),
+        "recorded_hours": metrics.get("recorded_hours"),
+    }
+
+
+def _confusers_taken(confusion: dict, target: str, confusers: tuple[str, ...]) -> tuple[int | None, int | None]:
+    """Calls of the confusers whose most confident detection (at the operating threshold) is the target.
+
+    ``confusion`` is metrics.json's: ``labels`` (``rows``: truth labels, ``columns``: the
+    labels detected) and ``counts``. Returns (taken, confuser calls), or Nones if absent.
+    """
+    labels, counts = confusion.get("labels"), confusion.get("counts")
+    if not labels or counts is None:
+        return None, None
+    rows, cols = (labels["rows"], labels["columns"]) if isinstance(labels, dict) else (labels, labels)
+    if target not in cols:
+        return None, None
+    counts = np.asarray(counts)
+    j = list(cols).index(target)
+    taken = total = 0
+    for c in confusers:
+        if c in rows:
+            i = list(rows).index(c)
+            taken += int(counts[i, j])
+            total += int(counts[i].sum())
+    return taken, total
+
+
+def _stats(results: list[dict], key: str) -> dict:
+    values = [r[key] for r in results if r.get(key) is not None]
+    if not values:
+        return {"mean": None, "min": None, "max": None}
+    return {"mean": float(np.mean(values)), "min": float(np.min(values)), "max": float(np.max(values))}
+
+
+def _table(results: list[dict], columns: list[tuple[str, str, str]]) -> str:
+    def cell(value, fmt: str) -> str:
+        return "n/a" if value is None else fmt.format(value)
+
+    head = ["seed", *(h for _, h, _ in columns)]
+    rows = [[str(r["seed"]), *(cell(r.get(k), f) for k, _, f in columns)] for r in results]
+    for stat in ("mean", "min", "max"):
+        rows.append([stat, *(cell(_stats(results, k)[stat], f) for k, _, f in columns)])
+    widths = [max(len(x) for x in col) for col in zip(head, *rows, strict=True)]
+    lines = ["| " + " | ".join(h.rjust(w) for h, w in zip(head, widths, strict=True)) + " |"]
+    lines.append("|" + "|".join("-" * (w + 2) for w in widths) + "|")
+    lines += ["| " + " | ".join(c.rjust(w) for c, w in zip(row, widths, strict=True)) + " |" for row in rows]
+    return "\n".join(lines)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--seeds", type=int, nargs="+", default=[1, 2, 3], help="scenario seeds (default 1 2 3)")
+    parser.add_argument("--hours", type=float, default=5.0, help="test site span, h (training: 0.3 of it; default 5)")
+    parser.add_argument("--jobs", type=int, default=2, help="worker processes for scoring (default 2)")
+    parser.add_argument("--json", type=Path, metavar="OUT", help="write every figure to this JSON file")
+    parser.add_argument("--folder", type=Path, help="keep each seed's files under DIR/seed-N (default: temporary)")
+    args = parser.parse_args()
+
+    results = []
+    for seed in args.seeds:
+        if args.folder is not None:
+            folder = args.folder / f"seed-{seed}"
+            if folder.exists():
+                shutil.rmtree(folder)
+            folder.mkdir(parents=True)
+            results.append(run_seed(seed, folder, args.hours, args.jobs))
+        else:
+            with tempfile.TemporaryDirectory(prefix=f"callsieve-hard-{seed}-") as tmp:
+                results.append(run_seed(seed, Path(tmp), args.hours, args.jobs))
+        r = results[-1]
+        print(
+            f"seed {seed}: AP {r['average_precision']}, recall at precision 0.9 {r['recall_at_precision_0.9']}, "
+            f"excess baseline AP {r['baseline_average_precision']}; {r['seed_s']:.0f} s",
+            file=sys.stderr,
+            flush=True,
+        )
+
+    print(f"Hard scenario, target tarsel-upsweep, test site {args.hours:g} h ({len(results)} seeds)")
+    print()
+    print(_table(results, MAIN))
+    print("R@P0.9: recall at precision 0.9; 0 where the precision never reaches 0.9 (metrics.json: null).")
+    print()
+    print("Survey figures at the operating threshold (precision 0.9, else the F1-optimal one)")
+    print()
+    print(_table(results, SURVEY))
+    if args.json:
+        keys = [k for k, _, _ in MAIN + SURVEY] + ["scenario_s", "evaluation_s", "threshold_for_precision_0.9"]
+        doc = {
+            "benchmark": "generalisation",
+            "command": " ".join([Path(sys.argv[0]).name, *sys.argv[1:]]),
+            "date_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+            "host": platform.node(),
+            "cpus": os.cpu_count(),
+            "hours": args.hours,
+            "jobs": args.jobs,
+            "seeds": results,
+            "summary": {k: _stats(results, k) for k in keys},
+        }
+        args.json.parent.mkdir(parents=True, exist_ok=True)
+        args.json.write_text(json.dumps(doc, indent=2))
+
+
+if __name__ == "__main__":
+    main()
