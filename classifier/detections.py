@@ -36,6 +36,7 @@ def pick_detections(
     segment_s: np.ndarray,
     band_hz: np.ndarray,
     floor: float,
+    active: np.ndarray | None = None,
 ) -> list[Candidate]:
     """Detections of every class from consecutive windows' probabilities.
 
@@ -46,6 +47,9 @@ def pick_detections(
     segment_s : np.ndarray [shape=(n_windows, 2)], s, where each window's main trace lies
     band_hz : np.ndarray [shape=(n_windows, 2)], Hz, the trace's lowest and highest frequency
     floor : float, probability below which nothing is kept
+    active : np.ndarray [shape=(n_windows,)] of bool, optional; windows whose trace stands
+        above the noise floor (their segment and band say where a call is). Without it,
+        every window counts as active.
 
     Returns
     -------
@@ -57,10 +61,13 @@ def pick_detections(
     reaches ``floor`` and stands at least ``floor / 2`` above the dips on both sides
     (its prominence) is one detection, so two calls a few seconds apart, with a dip
     between them, stay two. A peak is kept only where its class is the most probable
-    call class in that window; its time and band are those of that window's trace.
-    Of two peaks of one class whose intervals overlap by more than
-    ``DUPLICATE_OVERLAP`` of the shorter (the same trace seen from two windows), only
-    the more confident is kept.
+    call class in that window. Its time and band are the union of the traces of the
+    windows that saw the same call: going out from the peak window while the class's
+    probability stays at or above half the peak's (and the floor) and each window's
+    trace overlaps in time what is gathered so far, so a call longer than one window's
+    view is spanned whole. Of two detections of one class whose intervals overlap by
+    more than ``DUPLICATE_OVERLAP`` of the shorter (the same call seen from two peaks),
+    only the more confident is kept.
     """
     out: list[Candidate] = []
     calls = [j for j, c in enumerate(classes) if c != BACKGROUND]
@@ -68,6 +75,7 @@ def pick_detections(
         return out
     call_proba = proba[:, calls]
     best_call = np.asarray(calls)[np.argmax(call_proba, axis=1)]
+    active = np.ones(proba.shape[0], dtype=bool) if active is None else np.asarray(active, dtype=bool)
     for j in calls:
         p = proba[:, j]
         # Pad with zeros so that a run touching either end of the file still has a peak.
@@ -75,35 +83,61 @@ def pick_detections(
         peaks, _ = find_peaks(padded, height=floor, prominence=floor / 2.0)
         peaks = peaks - 1
         peaks = peaks[best_call[peaks] == j]
-        for i in _suppress_duplicates(peaks, p, segment_s):
-            low, high = band_hz[i]
+        extent = np.array([_call_extent(i, p, segment_s, band_hz, active, floor) for i in peaks]).reshape(-1, 4)
+        for k in _suppress_duplicates(p[peaks], extent[:, :2]):
             out.append(
                 Candidate(
-                    float(segment_s[i, 0]),
-                    float(segment_s[i, 1]),
-                    float(low),
-                    float(high),
+                    float(extent[k, 0]),
+                    float(extent[k, 1]),
+                    float(extent[k, 2]),
+                    float(extent[k, 3]),
                     classes[j],
-                    float(p[i]),
-                    int(i),
+                    float(p[peaks[k]]),
+                    int(peaks[k]),
                 )
             )
     out.sort(key=lambda c: (c.start_s, c.label))
     return out
 
 
-def _suppress_duplicates(peaks: np.ndarray, p: np.ndarray, segment_s: np.ndarray) -> list[int]:
-    """Peaks left after dropping each one that overlaps a more confident kept peak.
+def _call_extent(
+    i: int, p: np.ndarray, segment_s: np.ndarray, band_hz: np.ndarray, active: np.ndarray, floor: float
+) -> tuple[float, float, float, float]:
+    """Start, end (s) and band (Hz) of the call whose probability peaks at window ``i``.
+
+    A loop over the few windows around one detection (not over frames): the windows
+    on either side join while they hold the call (probability at least half the peak's),
+    see a trace, and that trace overlaps in time what the earlier ones saw.
+    """
+    a, b = segment_s[i]
+    lo, hi = band_hz[i]
+    if not active[i]:
+        return float(a), float(b), float(lo), float(hi)
+    keep = max(floor, 0.5 * p[i])
+    for step in (-1, 1):
+        k = i + step
+        while 0 <= k < p.size and p[k] >= keep and active[k]:
+            ka, kb = segment_s[k]
+            if kb < a or ka > b:
+                break
+            a, b = min(a, ka), max(b, kb)
+            lo, hi = min(lo, band_hz[k, 0]), max(hi, band_hz[k, 1])
+            k += step
+    return float(a), float(b), float(lo), float(hi)
+
+
+def _suppress_duplicates(confidence: np.ndarray, interval_s: np.ndarray) -> list[int]:
+    """Indices left after dropping each one that overlaps a more confident kept one.
 
     Overlap is the shared time over the shorter interval; ties in confidence keep the
-    earlier window, so the result does not depend on how the windows were split.
+    earlier one, so the result does not depend on how the windows were split.
     """
-    order = peaks[np.lexsort((peaks, -p[peaks]))]
+    order = np.lexsort((np.arange(confidence.size), -confidence))
     kept: list[int] = []
     for i in order:
-        a, b = segment_s[i]
+        a, b = interval_s[i]
         if kept:
-            ka, kb = segment_s[kept, 0], segment_s[kept, 1]
+            ka, kb = interval_s[kept, 0], interval_s[kept, 1]
             shared = np.minimum(b, kb) - np.maximum(a, ka)
             shorter = np.maximum(np.minimum(b - a, kb - ka), 1e-9)
             if np.any(shared > DUPLICATE_OVERLAP * shorter):

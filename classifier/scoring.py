@@ -238,7 +238,9 @@ def _score_file(
         # A window is this file's when its first sample is.
         first_sample = np.round(start_s * fs).astype(np.int64)
         owned = (first_sample >= offset) & (first_sample < offset + frames)
-        cands = pick_detections(proba, model.classes, np.concatenate(segment), np.column_stack([lo, hi]), threshold)
+        cands = pick_detections(
+            proba, model.classes, np.concatenate(segment), np.column_stack([lo, hi]), threshold, active
+        )
         cands = [c for c in cands if owned[c.window]]
         levels = measure_levels(reader, chain, cands, np.concatenate(noise_psd), frequency_hz)
         rows = []

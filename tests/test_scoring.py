@@ -486,3 +486,38 @@ def test_continuous_recording_split_into_files_gives_the_same_detections(labelle
     # What the test is for: detections that themselves lie across a join (the other calls
     # across joins may be detected from a window on one side only).
     assert crossing >= 2
+
+
+def test_a_call_gives_one_detection_that_spans_it(sweep_model, tmp_path):
+    # A detection spans the call: 1.3 s upsweeps, alone in noise, give one detection each,
+    # of 1.0 to 1.6 s (the acceptance rule of the detector work: the extent comes from
+    # the frames that hold the trace, within about a frame and a hop at each end).
+    import soundfile as sf
+    from callsieve.features.calibration import RecordingChain, samples_from_pressure
+    from callsieve.features.synthesis import CallShape, call_waveform
+    from conftest import write_manifest
+
+    fs = 2000
+    rng = np.random.default_rng(5)
+    # White noise at 65 dB re 1 µPa²/Hz as at the training site (conftest `labelled`).
+    p = rng.normal(0.0, np.sqrt(10 ** (65 / 10) * fs / 2), fs * 120)
+    t = np.arange(p.size) / fs
+    shape = CallShape("sweep", 80.0, 160.0, 1.3)
+    starts = [10.2, 40.7, 71.1, 100.45]
+    for s in starts:
+        # 110 dB re 1 µPa: well above the in-band noise (about +5 dB SNR over 70-175 Hz).
+        p += call_waveform(shape, t - s, np.sqrt(2) * 10 ** (110 / 20))
+    site = tmp_path / "site"
+    (site / "audio").mkdir(parents=True)
+    write_manifest(site, name="extent-site")
+    chain = RecordingChain.flat(2.5, -170.0, 40.0)
+    sf.write(site / "audio" / "unit_20320105T000000Z.wav", samples_from_pressure(p, fs, chain), fs, subtype="PCM_16")
+    db = tmp_path / "extent.db"
+    score_deployment(sweep_model, site / "manifest.toml", db)
+    with sqlite3.connect(db) as con:
+        rows = con.execute("SELECT start_s, end_s, label FROM detections WHERE confidence >= 0.5").fetchall()
+    for s in starts:
+        over = [(a, b) for a, b, label in rows if label == "up" and a < s + shape.duration_s and b > s]
+        assert len(over) == 1, f"call at {s} s: {over}"
+        a, b = over[0]
+        assert 1.0 <= b - a <= 1.6, f"call at {s} s spans {a:.2f}-{b:.2f} s"
