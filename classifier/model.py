@@ -45,6 +45,9 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     class_weight : {'balanced', 'none'}
     folds : int, grouped folds for calibration and out-of-fold scores
     random_state : int
+    columns : list of int, optional; the columns of X the estimator learns from (all
+        when None), so a model can be handed whole descriptor rows and still leave some
+        out (absolute levels)
 
     Attributes
     ----------
@@ -64,6 +67,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         class_weight: str = "balanced",
         folds: int = 4,
         random_state: int = 0,
+        columns: list[int] | None = None,
     ) -> None:
         self.kind = kind
         self.params = params
@@ -71,6 +75,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         self.class_weight = class_weight
         self.folds = folds
         self.random_state = random_state
+        self.columns = columns
 
     def _base(self) -> BaseEstimator:
         params = dict(self.params or {})
@@ -92,6 +97,10 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             )
 
         raise ValueError(f"unknown model kind {self.kind!r}")
+
+    def _inputs(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float32)
+        return X if self.columns is None else np.ascontiguousarray(X[:, list(self.columns)])
 
     def _splits(self, X: np.ndarray, y: np.ndarray, groups: np.ndarray | None) -> list:
         if groups is not None and len(np.unique(groups)) >= 2:
@@ -154,7 +163,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             no better).
         groups : np.ndarray [shape=(n,)], optional; no group is split across folds
         """
-        X = np.asarray(X, dtype=np.float32)
+        X = self._inputs(X)
         y = np.asarray(y)
         weight = np.ones(y.size) if sample_weight is None else np.asarray(sample_weight, dtype=float)
         self.classes_ = np.unique(y)
@@ -184,7 +193,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     def predict_proba(self, X: np.ndarray) -> np.ndarray:
         """Calibrated class probabilities [shape=(n, n_classes)], columns as ``classes_``."""
         check_is_fitted(self, "estimator_")
-        raw = _aligned_proba(self.estimator_, np.asarray(X, dtype=np.float32), self.classes_)
+        raw = _aligned_proba(self.estimator_, self._inputs(X), self.classes_)
         return self._calibrate(raw, self.calibrators_)
 
     def predict(self, X: np.ndarray) -> np.ndarray:

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from callsieve.features.descriptors import DescriptorSettings, descriptor_names
+from callsieve.features.descriptors import DescriptorSettings, descriptor_names, is_absolute_level
 from callsieve.features.pipeline import describe_file
 from callsieve.features.streaming import AudioReadError
 from sklearn.metrics import average_precision_score, confusion_matrix
@@ -144,6 +144,10 @@ def choose_settings(
     return DescriptorSettings(**({k: float(v) for k, v in chosen.items()} | overrides))
 
 
+#: Windows of a call whose label is not the target's, in a model of one target.
+LABELLED_OTHER = "\x00other"
+
+
 def _assign(
     start: np.ndarray, end: np.ndarray, notes: list[Annotation], min_overlap: float, classes: set[str] | None
 ) -> tuple[np.ndarray, np.ndarray]:
@@ -169,7 +173,7 @@ def _assign(
     label[clear] = BACKGROUND
     if classes is not None:  # a binary model: other labels are background examples too
         other = (label != "") & (label != BACKGROUND) & ~np.isin(label, list(classes))
-        label[other] = BACKGROUND
+        label[other] = LABELLED_OTHER
     return label, clear
 
 
@@ -229,10 +233,13 @@ def collect_examples(
             seconds += rec.duration_s
             label, _ = _assign(start, end, by_file[name], config.min_overlap, keep_classes)
             group = _group_keys(dep, rec, start)
-            pos = (label != "") & (label != BACKGROUND)
-            pos_X.append(values[pos])
-            pos_y.append(label[pos])
-            pos_g.append(group[pos])
+            pos = (label != "") & (label != BACKGROUND) & (label != LABELLED_OTHER)
+            # Calls of other labels, in a model of one target: background examples that are
+            # always kept (hard negatives an analyst named), never left to the draw below.
+            other = label == LABELLED_OTHER
+            pos_X += [values[pos], values[other]]
+            pos_y += [label[pos], np.full(int(other.sum()), BACKGROUND, dtype=object)]
+            pos_g += [group[pos], group[other]]
             bg = label == BACKGROUND
             bg_X.append(values[bg])
             bg_g.append(group[bg])
@@ -253,7 +260,7 @@ def collect_examples(
         g_bg = np.concatenate(bg_g) if bg_g else np.empty(0, _KEY_DTYPE)
         idx, weight = _sample_background(
             X_bg[:, snr_col],
-            max(int(config.background_ratio * max(len(y_pos), 1)), 1),
+            max(int(config.background_ratio * max(int(np.sum(y_pos != BACKGROUND)), 1)), 1),
             config.hard_fraction,
             rng,
         )
@@ -262,7 +269,7 @@ def collect_examples(
         parts_w += [np.ones(len(y_pos)), weight]
         parts_g += [g_pos, g_bg[idx]]
         parts_s += [np.full(len(y_pos) + idx.size, lset.name, dtype=object)]
-        counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size)}
+        counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size + np.sum(y_pos == BACKGROUND))}
     X = np.concatenate(parts_X).astype(np.float32)
     y = np.concatenate(parts_y).astype(str)
     if np.unique(y).size < 2:
@@ -357,7 +364,10 @@ def _sample_background(
     return idx[order_idx], weight[order_idx]
 
 
-def _estimator(config: TrainingConfig) -> CallClassifier:
+def _estimator(config: TrainingConfig, names: list[str] | None = None) -> CallClassifier:
+    # The model learns from relative descriptors only; absolute levels stay in the rows
+    # (and in the outputs) but would teach it the training site's noise and ranges.
+    columns = None if names is None else [i for i, n in enumerate(names) if not is_absolute_level(n)]
     return CallClassifier(
         kind=config.kind,
         params=config.estimator_params,
@@ -365,6 +375,7 @@ def _estimator(config: TrainingConfig) -> CallClassifier:
         class_weight=config.class_weight,
         folds=config.folds,
         random_state=config.seed,
+        columns=columns,
     )
 
 
@@ -476,7 +487,9 @@ def train_model(
         )
     examples = collect_examples(sets, settings, config, target, progress)
     t1 = time.perf_counter()
-    estimator = _estimator(config).fit(examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups)
+    estimator = _estimator(config, examples.names).fit(
+        examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
+    )
     t2 = time.perf_counter()
     validation = cross_validate(estimator, examples) | {"group_by": config.group_by, "grouping": examples.grouping}
     t3 = time.perf_counter()

@@ -19,13 +19,15 @@ __all__ = [
     "DescriptorSettings",
     "descriptor_table",
     "descriptor_names",
+    "model_descriptor_names",
+    "is_absolute_level",
     "describe_windows",
     "subband_edges_hz",
     "active_threshold_db",
 ]
 
 # Bump when any descriptor changes meaning, so old models are refused on new data.
-DESCRIPTOR_VERSION = "2"
+DESCRIPTOR_VERSION = "3"
 _TINY = 1e-30
 
 
@@ -44,6 +46,7 @@ class DescriptorSettings:
     noise_step_s : float, s, time between noise-floor estimates (interpolated between)
     noise_percentile : float, %, percentile of the PSD taken as the noise floor
     n_subbands : int, equal log-width sub-bands of the band
+    n_time_slices : int, equal slices of the window in time for the patch descriptors
     trace_false_alarm : float, probability that a frame of pure noise has its
         strongest bin stand above the threshold; the threshold on the excess over the
         noise floor follows from it and the number of bins (see :func:`active_threshold_db`)
@@ -59,6 +62,7 @@ class DescriptorSettings:
     noise_step_s: float = 5.0
     noise_percentile: float = 20.0
     n_subbands: int = 4
+    n_time_slices: int = 4
     trace_false_alarm: float = 0.05
 
     def __post_init__(self) -> None:
@@ -85,6 +89,8 @@ class DescriptorSettings:
             raise ParameterError("trace_false_alarm must be in (0, 1)")
         if not 0 < self.noise_percentile < 100 or self.n_subbands < 1:
             raise ParameterError("noise_percentile must be in (0, 100) and n_subbands >= 1")
+        if not 1 <= self.n_time_slices <= self.frames_per_window:
+            raise ParameterError("n_time_slices must be between 1 and the frames in a window")
 
     @property
     def grid(self) -> SpectrogramGrid:
@@ -174,25 +180,59 @@ _ENERGY = [
 
 def descriptor_names(settings: DescriptorSettings) -> list[str]:
     """Names of the descriptors, in column order."""
-    sub = []
-    for i in range(settings.n_subbands):
-        sub += [f"subband{i + 1}_level_db", f"subband{i + 1}_excess_db"]
-    return [n for n, _, _ in _CONTOUR] + [n for n, _, _ in _ENERGY] + sub
+    return [n for n, _, _ in descriptor_table(settings)]
+
+
+#: Descriptors that are absolute levels (dB re 1 µPa): they say how loud the site is as
+#: much as how loud the call is, so the model does not see them (see model_descriptor_names).
+def is_absolute_level(name: str) -> bool:
+    """True for a descriptor that is an absolute level, dB re 1 µPa."""
+    return name in ("band_level_db", "noise_level_db", "peak_to_peak_db") or (
+        name.startswith("subband") and name.endswith("_level_db")
+    )
+
+
+def model_descriptor_names(settings: DescriptorSettings) -> list[str]:
+    """The descriptors a model learns from: all but the absolute levels.
+
+    Levels relative to the noise floor (excesses, SNR), frequencies, times and shapes
+    travel from one site to another; absolute levels carry the site's noise and the
+    callers' ranges, and stay in the outputs (received level) instead.
+    """
+    return [n for n in descriptor_names(settings) if not is_absolute_level(n)]
 
 
 def descriptor_table(settings: DescriptorSettings | None = None) -> list[tuple[str, str, str]]:
-    """(name, unit, meaning) of every descriptor; sub-band edges follow ``settings``."""
-    n_sub = settings.n_subbands if settings is not None else 4
+    """(name, unit, meaning) of every descriptor; sub-bands and slices follow ``settings``."""
+    n_sub = settings.n_subbands if settings is not None else DescriptorSettings.n_subbands
+    n_t = settings.n_time_slices if settings is not None else DescriptorSettings.n_time_slices
     rows = list(_CONTOUR) + list(_ENERGY)
     for i in range(n_sub):
+        k = i + 1
         rows.append(
             (
-                f"subband{i + 1}_level_db",
+                f"subband{k}_level_db",
                 "dB re 1 µPa",
-                f"rms SPL in sub-band {i + 1} of {n_sub} (equal widths in log frequency)",
+                f"rms SPL in sub-band {k} of {n_sub} (equal widths in log frequency)",
             )
         )
-        rows.append((f"subband{i + 1}_excess_db", "dB", f"sub-band {i + 1} power over its noise-floor power"))
+        rows.append((f"subband{k}_excess_db", "dB", f"sub-band {k} power over its noise-floor power, window mean"))
+        rows.append(
+            (
+                f"subband{k}_peak_excess_db",
+                "dB",
+                f"sub-band {k} power over its noise-floor power in its strongest frame",
+            )
+        )
+    for q in range(n_t):
+        for i in range(n_sub):
+            rows.append(
+                (
+                    f"patch_t{q + 1}_b{i + 1}_excess_db",
+                    "dB",
+                    f"power over the noise floor in time slice {q + 1} of {n_t} of the window and sub-band {i + 1}",
+                )
+            )
     return rows
 
 
@@ -341,17 +381,24 @@ def describe_windows(
     duration90 = _excess_core_duration(_window_view(frame_excess, first, n_w), hop)
 
     edges = subband_edges_hz(settings)
-    sub = []
+    sub, frame_sub_p, frame_sub_n = [], [], []
     for lo, hi in zip(edges[:-1], edges[1:], strict=True):
         sel = (f >= lo - df / 2) & (f < hi + (df / 2 if hi == edges[-1] else -df / 2))
         if not np.any(sel):
             sel = np.abs(f - np.sqrt(lo * hi)) == np.min(np.abs(f - np.sqrt(lo * hi)))
         sp = mean_psd[sel].sum(axis=0) * df
         sn = mean_noise[sel].sum(axis=0) * df
+        fp = p_lin[sel].sum(axis=0)  # per frame; the bin width cancels in the ratios
+        fn = n_lin[sel].sum(axis=0)
+        frame_sub_p.append(fp)
+        frame_sub_n.append(fn)
+        peak = _window_view(fp / np.maximum(fn, _TINY), first, n_w).max(axis=1)
         sub += [
             10.0 * np.log10(np.maximum(sp, _TINY)),
             10.0 * np.log10(np.maximum(sp, _TINY) / np.maximum(sn, _TINY)),
+            10.0 * np.log10(np.maximum(peak, _TINY)),
         ]
+    sub += _patch_excess_db(np.array(frame_sub_p), np.array(frame_sub_n), first, n_w, settings.n_time_slices)
     energy = np.stack(
         [
             band_level,
@@ -374,6 +421,39 @@ def describe_windows(
         np.column_stack([first_act * hop, last_act * hop + frame_s]),
     )
     return np.concatenate([contour, energy], axis=1).astype(np.float32), segment, mean_noise.T.astype(np.float32)
+
+
+def _patch_excess_db(
+    sub_p: np.ndarray, sub_n: np.ndarray, first: np.ndarray, n_w: int, n_slices: int
+) -> list[np.ndarray]:
+    """Excess over the floor of each (time slice, sub-band) cell of every window, dB.
+
+    The window's spectrogram on a coarse fixed grid: sub-bands in frequency, equal
+    slices in time. An upsweep lights the cells from low-early to high-late, a downsweep
+    the other diagonal, a tone one row; tree models read such cells well. Sums over
+    slices come from cumulative sums over frames, so the cost does not grow with n_w.
+
+    Parameters
+    ----------
+    sub_p, sub_n : np.ndarray [shape=(n_sub, n_frames)], power and noise power per sub-band
+    first : np.ndarray [shape=(n_windows,)], first frame of each window
+    n_w : int, frames per window
+    n_slices : int, time slices per window
+
+    Returns
+    -------
+    list of np.ndarray [shape=(n_windows,)], slice-major: slice 1 sub-bands 1..n, ...
+    """
+    zero = np.zeros((sub_p.shape[0], 1))
+    cp = np.concatenate([zero, np.cumsum(sub_p, axis=1, dtype=np.float64)], axis=1)
+    cn = np.concatenate([zero, np.cumsum(sub_n, axis=1, dtype=np.float64)], axis=1)
+    bounds = np.round(np.linspace(0, n_w, n_slices + 1)).astype(np.int64)
+    out = []
+    for a, b in zip(bounds[:-1], bounds[1:], strict=True):
+        p = cp[:, first + b] - cp[:, first + a]
+        n = cn[:, first + b] - cn[:, first + a]
+        out.extend(10.0 * np.log10(np.maximum(p, _TINY) / np.maximum(n, _TINY)))
+    return out
 
 
 def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:

@@ -171,9 +171,15 @@ def test_every_descriptor_of_the_table_is_covered_here():
         "peak_to_peak_db", "psd_evenness", "excess_centroid_hz", "peak_run_width_hz", "excess_core_duration_s",
     }  # fmt: skip
     names = {n for n, _, _ in descriptor_table(SETTINGS)}
-    sub = {n for n in names if n.startswith("subband")}
-    assert names - sub == covered
-    assert sub == {f"subband{k}_{q}" for k in range(1, 5) for q in ("level_db", "excess_db")}
+    # Sub-band levels, excesses and peak excesses, and the patch cells, are tested below
+    # for every sub-band and slice by name pattern.
+    per_band = {n for n in names if n.startswith(("subband", "patch_"))}
+    assert names - per_band == covered
+    k, q = SETTINGS.n_subbands, SETTINGS.n_time_slices
+    assert len(per_band) == 3 * k + k * q
+    assert {n for n in per_band if n.startswith("subband")} == {
+        f"subband{i}_{kind}" for i in range(1, k + 1) for kind in ("level_db", "excess_db", "peak_excess_db")
+    }
 
 
 # --- trace: frequencies -----------------------------------------------------------------
@@ -530,3 +536,58 @@ def test_psd_evenness_of_noise_and_of_a_tone(scene_a):
     expected = float(-(prob * np.log(prob)).sum() / np.log(freqs.size))
     assert expected == pytest.approx(0.279, abs=0.005)
     assert _row(scene_a, t0 + 0.5)["psd_evenness"] == pytest.approx(expected, abs=0.02)
+
+
+# --- peak excess per sub-band and the coarse spectrogram patch ----------------------------
+
+
+def test_subband_peak_excess_of_a_burst_and_of_a_steady_tone(scene_a):
+    # A burst of T s at 300 Hz (sub-band 3, 160-320 Hz, 160 Hz wide) in a 2-s window: in
+    # its frames the sub-band holds P_t = A²/2 over the noise N0·160 (REFERENCES §3, §5),
+    # so the strongest frame's excess is 10 log10(1 + P_t/(N0·160)) whatever T (within
+    # 0.7 dB as the mean excess above); the window mean holds the burst for about T/2 of
+    # the window: 10 log10(1 + (T/2) P_t/(N0·160)) (± a frame at each end). A steady tone
+    # filling the window has peak and mean excess within the frames' scatter (1.5 dB).
+    edges = np.geomspace(SETTINGS.low_hz, SETTINGS.high_hz, SETTINGS.n_subbands + 1)
+    width = edges[3] - edges[2]
+    snr_lin = (1e5**2 / 2) / (N0 * width)
+    for t0, dur in BURSTS[:1] + BURSTS[2:]:  # 1.0 s and 0.8 s: wholly inside one window
+        row = _row(scene_a, np.floor(t0 / 0.5) * 0.5)
+        assert row["subband3_peak_excess_db"] == pytest.approx(10 * np.log10(1 + snr_lin), abs=0.7), dur
+        mean_lo = 10 * np.log10(1 + (dur - FRAME_S) / SETTINGS.window_s * snr_lin)
+        mean_hi = 10 * np.log10(1 + (dur + FRAME_S) / SETTINGS.window_s * snr_lin)
+        assert mean_lo - 0.3 <= row["subband3_excess_db"] <= mean_hi + 0.3, dur
+        assert row["subband3_peak_excess_db"] > row["subband3_excess_db"] + 2.0
+    t0, _, _ = EXCESS_TONES[3]
+    row = _row(scene_a, t0 + 0.5)  # 430 Hz: sub-band 4
+    assert 0.0 <= row["subband4_peak_excess_db"] - row["subband4_excess_db"] <= 1.5
+
+
+def test_patch_cells_of_a_steady_tone_equal_its_window_mean(scene_a):
+    # The patch cell (time slice q, sub-band k) is power over noise power in that slice:
+    # for a tone that fills the window every slice holds the same power, so each cell of
+    # its sub-band equals the window's mean excess (within the frames' scatter, 1 dB), and
+    # the sub-bands without it stay near 0 dB (1.5 dB as for the sub-band excesses).
+    t0, _, _ = EXCESS_TONES[1]  # 230 Hz: sub-band 3
+    row = _row(scene_a, t0 + 0.5)
+    for q in range(1, SETTINGS.n_time_slices + 1):
+        assert row[f"patch_t{q}_b3_excess_db"] == pytest.approx(row["subband3_excess_db"], abs=1.0), q
+        for k in (1, 2, 4):
+            assert abs(row[f"patch_t{q}_b{k}_excess_db"]) <= 1.5, (q, k)
+
+
+def test_patch_cells_follow_a_down_sweep(scene_a):
+    # The down-sweep 250 -> 100 Hz over 20.5-21.5 s, in the window at 20.0 s cut in four
+    # 0.5-s slices: it crosses 160 Hz at 0.6 of its second (250 - 150·0.6 = 160), so slice 2
+    # (0.5-1.0 s) holds it in sub-band 3 (160-320 Hz) and slice 3 (1.0-1.5 s) in sub-band 2
+    # (80-160 Hz): the diagonal of a down-sweep, high-early and low-late (worked by hand).
+    # Sub-band 4 never holds it (within 1.5 dB of 0), nor sub-band 1 before the sweep's
+    # abrupt end, whose splatter reaches the 4 bins of 40-80 Hz in slice 4.
+    row = _row(scene_a, 20.0)
+    cell = {(q, k): row[f"patch_t{q}_b{k}_excess_db"] for q in range(1, 5) for k in range(1, 5)}
+    assert cell[2, 3] > cell[2, 2] + 10.0
+    assert cell[3, 2] > cell[3, 3] + 3.0
+    assert cell[2, 3] > cell[4, 3] + 10.0 and cell[3, 2] > cell[1, 2] + 10.0
+    for q in range(1, 5):
+        assert abs(cell[q, 4]) <= 1.5, q
+    assert abs(cell[1, 1]) <= 1.5 and abs(cell[2, 1]) <= 1.5
