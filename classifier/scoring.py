@@ -140,6 +140,7 @@ def score_file(
     offset: int = 0,
     before: Neighbour | None = None,
     after: Neighbour | None = None,
+    frames_listed: int | None = None,
 ) -> FileResult:
     """Detections of one file: describe, predict, pick peaks, measure levels.
 
@@ -157,6 +158,9 @@ def score_file(
     before, after : (path, samples) of the neighbouring files of a continuous recording,
         read for context so that windows, noise floor and peaks cross file boundaries
         exactly as inside one file; None at a gap
+    frames_listed : int, optional, samples the file held when the deployment was listed;
+        a file that holds another number now (a copy in progress) fails, to be scored
+        again when complete, instead of being scored as a part
 
     Returns
     -------
@@ -175,23 +179,33 @@ def score_file(
             own = AudioReader(path, channel)
             frames = own.frames
             own.close()
+            if frames_listed is not None and frames != frames_listed:
+                raise AudioReadError(
+                    path,
+                    f"holds {frames} samples but held {frames_listed} when the deployment was listed "
+                    "(still being copied?); run the same command again when it is complete",
+                )
             parts = [(str(path), offset, frames)]
-            # A neighbour that cannot be opened is a gap, not a fault of this file.
-            if before is not None and _opens(before[0], channel):
+            # A neighbour that cannot be opened, or no longer holds the samples it held
+            # when the deployment was listed (a copy in progress), is a gap, not a fault
+            # of this file.
+            if before is not None and _opens(before[0], channel, before[1]):
                 parts.insert(0, (before[0], offset - before[1], before[1]))
-            if after is not None and _opens(after[0], channel):
+            if after is not None and _opens(after[0], channel, after[1]):
                 parts.append((after[0], offset + frames, after[1]))
             return _score_file(model, parts, offset, frames, name, chain, channel, threshold, block_s, t0, gate)
         except AudioReadError as exc:
             return FileResult(name, "failed", exc.reason, 0, [], time.perf_counter() - t0)
 
 
-def _opens(path: str, channel: int) -> bool:
+def _opens(path: str, channel: int, frames: int) -> bool:
+    """Whether a neighbour opens and still holds the ``frames`` samples it was listed with."""
     try:
-        AudioReader(path, channel).close()
-        return True
+        reader = AudioReader(path, channel)
     except AudioReadError:
         return False
+    reader.close()
+    return reader.frames == frames
 
 
 def _score_file(
@@ -615,13 +629,14 @@ def _results(
     )
 
 
-def _continuity(dep: Deployment) -> dict[str, tuple[int, Neighbour | None, Neighbour | None]]:
-    """Per file: its offset in its continuous recording (samples) and its neighbours there.
+def _continuity(dep: Deployment) -> dict[str, tuple[int, Neighbour | None, Neighbour | None, int]]:
+    """Per file: its offset in its continuous recording (samples), its neighbours there,
+    and the samples it held when listed.
 
     Consecutive files whose join is within the deployment's gap tolerance form one
     continuous recording; offsets add up sample counts from its first file.
     """
-    out: dict[str, tuple[int, Neighbour | None, Neighbour | None]] = {}
+    out: dict[str, tuple[int, Neighbour | None, Neighbour | None, int]] = {}
     files = dep.files
     offset = 0
     for i, f in enumerate(files):
@@ -634,6 +649,7 @@ def _continuity(dep: Deployment) -> dict[str, tuple[int, Neighbour | None, Neigh
             offset,
             (str(prev.path), prev.info.frames) if joined_prev else None,
             (str(nxt.path), nxt.info.frames) if joined_next else None,
+            f.info.frames,
         )
     return out
 

@@ -443,7 +443,7 @@ def test_a_neighbour_that_cannot_be_read_counts_as_a_gap(labelled, sweep_model, 
     _corrupt(paths[1], how)
     dep = load_deployment(man)
     ctx = _continuity(dep)
-    assert ctx[first] == (0, None, None) and ctx[third] == (0, None, None)
+    assert ctx[first][:3] == (0, None, None) and ctx[third][:3] == (0, None, None)
     db = tmp_path / "split.db"
     summary = score_deployment(sweep_model, man, db)
     assert [f["file"] for f in summary["failed"]] == [middle]
@@ -455,12 +455,6 @@ def test_a_neighbour_that_cannot_be_read_counts_as_a_gap(labelled, sweep_model, 
     assert _stored_rows(db, first) or _stored_rows(db, third)  # the comparison is not of two empty lists
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="a WAV neighbour truncated after the listing still opens (scoring._opens), is read with its "
-    "old length and leaves a hole in the stream: scoring stops with ParameterError 'frame_index asks for "
-    "frames that do not lie within x' instead of treating it as a gap (scoring.py is not ours to change)",
-)
 def test_a_neighbour_that_becomes_unreadable_after_the_listing_counts_as_a_gap(
     labelled, sweep_model, tmp_path, monkeypatch
 ):
