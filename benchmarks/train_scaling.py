@@ -45,7 +45,7 @@ def prepare(folder: Path) -> Path:
         f"described {ex.windows_described} windows ({ex.hours_described:.1f} h of audio) in {seconds:.1f} s: "
         f"{ex.hours_described / seconds * 3600:.0f} x real time"
     )
-    np.savez(cache, X=ex.X, y=ex.y, w=ex.weight, g=ex.groups)
+    np.savez(cache, X=ex.X, y=ex.y, w=ex.weight, g=ex.groups, names=np.array(ex.names))
     return cache
 
 
@@ -59,7 +59,8 @@ def measure(cache: str, size: int, kind: str) -> None:
     X = data["X"][idx] + rng.normal(0, 0.01, (size, data["X"].shape[1])) * data["X"].std(axis=0)
     cfg = TrainingConfig(kind=kind)
     t0 = time.perf_counter()
-    _estimator(cfg).fit(X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx])
+    # The model's own inputs: the relative descriptors, as `train` chooses them.
+    _estimator(cfg, [str(n) for n in data["names"]]).fit(X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx])
     seconds = time.perf_counter() - t0
     peak = peak_rss_mb()
     print(json.dumps({"kind": kind, "windows": size, "seconds": round(seconds, 1), "peak_rss_mb": round(peak)}))
