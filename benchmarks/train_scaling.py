@@ -60,7 +60,9 @@ def measure(cache: str, size: int, kind: str) -> None:
     cfg = TrainingConfig(kind=kind)
     t0 = time.perf_counter()
     # The model's own inputs: the relative descriptors, as `train` chooses them.
-    _estimator(cfg, [str(n) for n in data["names"]]).fit(X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx])
+    _estimator(cfg, [str(n) for n in data["names"]]).fit(
+        X.astype(np.float32), data["y"][idx], sample_weight=data["w"][idx], groups=data["g"][idx]
+    )
     seconds = time.perf_counter() - t0
     peak = peak_rss_mb()
     print(json.dumps({"kind": kind, "windows": size, "seconds": round(seconds, 1), "peak_rss_mb": round(peak)}))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 import traceback
 from collections.abc import Sequence
@@ -45,9 +46,11 @@ def _cmd_calibrate(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import format_demo_summary, run_demo
 
-    if args.hours <= 0:
-        raise InputError(f"--hours must be > 0, got {args.hours:g}")
+    if not math.isfinite(args.hours) or args.hours <= 0:
+        raise InputError(f"--hours must be a number of hours > 0, got {args.hours:g}")
     out = Path(args.outdir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out}: is a file; OUTDIR must be a new folder (or an earlier demo's)")
     if out.exists() and any(out.iterdir()) and not (out / "scenario.json").exists():
         raise InputError(f"{out}: folder exists and is not an earlier demo's; choose a new OUTDIR")
     summary = run_demo(
@@ -80,6 +83,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
         experiment=args.experiment,
         register=args.register,
         progress=_progress(args),
+        force=args.force,
     )
     print(format_training_report(report))
     return EXIT_OK
@@ -144,7 +148,9 @@ def _cmd_score(args: argparse.Namespace) -> int:
 def _cmd_export(args: argparse.Namespace) -> int:
     from .export import export_detections
 
-    result = export_detections(args.db, args.out, run_id=args.run, label=args.label, min_confidence=args.min_confidence)
+    result = export_detections(
+        args.db, args.out, run_id=args.run, label=args.label, min_confidence=args.min_confidence, force=args.force
+    )
     print(f"wrote {result['rows']} detections of run {result['run_id']} to {result['out']}")
     print(CAUTION)
     return EXIT_OK
@@ -226,6 +232,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--tracking-uri", metavar="URI", help="MLflow store (default: MLflow's own)")
     p.add_argument("--experiment", metavar="NAME", help="MLflow experiment (default 'callsieve')")
     p.add_argument("--register", metavar="NAME", help="register the model under this name")
+    p.add_argument("--force", action="store_true", help="replace an existing file that is not an earlier model")
     p.set_defaults(func=_cmd_train)
 
     p = verbs.add_parser("score", parents=[common], help="screen a deployment with a model into a detection store")
@@ -249,6 +256,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
     p.add_argument("--label", metavar="L", help="only this class")
     p.add_argument("--min-confidence", type=float, metavar="P", help="only detections at or above P")
+    p.add_argument("--force", action="store_true", help="replace an existing file that is not an earlier export")
     p.set_defaults(func=_cmd_export)
 
     p = verbs.add_parser(
@@ -296,6 +304,13 @@ def main(argv: Sequence[str] | None = None) -> int:
             traceback.print_exc()
         print(f"callsieve: error: {exc}", file=sys.stderr)
         return EXIT_INPUT
+    except BrokenPipeError:
+        # The reader of stdout stopped early (`callsieve calibrate --json | head`): not an
+        # error of ours. Point stdout at nothing so the interpreter's last flush is quiet.
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         print("callsieve: error: interrupted; run the same command again to carry on", file=sys.stderr)
         return EXIT_FAILED

@@ -8,6 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import InputError
+from .outputs import check_output
 from .store import latest_run_id, open_store
 
 __all__ = ["DETECTION_COLUMNS", "export_detections", "CAUTION"]
@@ -66,14 +67,36 @@ def _rows(con, run_id: int, label: str | None, min_confidence: float | None):
             yield [det, run, dep, name, s0, s1, _iso(fstart, s0), _iso(fstart, s1), lo, hi, lab, conf, rl, snr, clip]
 
 
+def _earlier_export(path: Path) -> bool:
+    """An earlier output of export: a CSV with the detection table's header, or our Parquet."""
+    if path.suffix.lower() == ".parquet":
+        try:
+            import pyarrow.parquet as pq
+
+            meta = pq.read_schema(path).metadata or {}
+        except Exception:
+            return False
+        return meta.get(b"caution") == CAUTION.encode()
+    try:
+        with open(path, encoding="utf-8", newline="") as fh:
+            return next(csv.reader(fh), None) == DETECTION_COLUMNS
+    except (OSError, UnicodeDecodeError):
+        return False
+
+
 def export_detections(
     db: str | Path,
     out: str | Path,
     run_id: int | None = None,
     label: str | None = None,
     min_confidence: float | None = None,
+    force: bool = False,
 ) -> dict[str, Any]:
     """Write the detections of a run as CSV, or Parquet when ``out`` ends in ``.parquet``.
+
+    ``out`` may replace an earlier detection table, never another file (a store, a model,
+    a label table), unless ``force``; the table is written under a temporary name and
+    renamed, so a reader never sees half of it.
 
     Returns
     -------
@@ -82,10 +105,26 @@ def export_detections(
     """
     if min_confidence is not None and not 0.0 <= min_confidence <= 1.0:
         raise InputError(f"--min-confidence must be in 0..1, got {min_confidence:g}")
+    Path(out).parent.mkdir(parents=True, exist_ok=True)
+    out = check_output(
+        out,
+        option="--out",
+        suffixes=(".csv", ".parquet"),
+        inputs=(db,),
+        ours=_earlier_export,
+        what="a detection table",
+        force=force,
+    )
     con = open_store(db, create=False)
     run_id = latest_run_id(con, run_id)
-    out = Path(out)
-    out.parent.mkdir(parents=True, exist_ok=True)
+    if label is not None:
+        known = {r[0] for r in con.execute("SELECT DISTINCT label FROM detections WHERE run_id = ?", (run_id,))}
+        if label not in known:
+            con.close()
+            raise InputError(
+                f"--label {label!r}: run {run_id} has no detection of that class "
+                f"(its classes: {', '.join(sorted(known)) or 'none'})"
+            )
     tmp = out.with_name(out.name + ".partial")
     n = 0
     rows = _rows(con, run_id, label, min_confidence)

@@ -121,10 +121,15 @@ def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
         and ``create`` is False.
     """
     path = Path(path)
-    if not create and not path.is_file():
-        raise InputError(f"{path}: no such detection store; make one with 'callsieve score'")
     if path.exists() and path.is_dir():
         raise InputError(f"{path}: is a folder; give a file name for the store")
+    if not path.parent.is_dir():
+        raise InputError(f"{path}: the folder {path.parent} does not exist; create it or choose another path")
+    if not create and not path.is_file():
+        raise InputError(f"{path}: no such detection store; make one with 'callsieve score'")
+    if not create and path.stat().st_size == 0:
+        # SQLite would take an empty file for an empty database and make a store of it.
+        raise InputError(f"{path}: an empty file, not a detection store; make one with 'callsieve score'")
     try:
         con = sqlite3.connect(path, timeout=30.0, isolation_level=None)
         con.row_factory = sqlite3.Row

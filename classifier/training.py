@@ -27,6 +27,7 @@ from .deployment import Deployment
 from .errors import InputError
 from .labels import BACKGROUND, Annotation
 from .model import CallClassifier, CallModel
+from .outputs import check_output
 
 __all__ = [
     "LabelledSet",
@@ -547,6 +548,17 @@ def _pair_tables(label_paths: list[Path], deployments: list[Deployment]) -> list
     return sets
 
 
+def _earlier_model(path: Path) -> bool:
+    """A model file this command wrote: a skops archive holding a callsieve model's payload."""
+    import zipfile
+
+    try:
+        with zipfile.ZipFile(path) as z:
+            return "content_sha256" in z.read("schema.json").decode("utf-8", "replace")
+    except (OSError, KeyError, zipfile.BadZipFile):
+        return False
+
+
 def train(
     manifests: list[str | Path],
     label_tables: list[str | Path],
@@ -558,6 +570,7 @@ def train(
     register: str | None = None,
     track: bool = True,
     progress: Callable[[str], None] | None = None,
+    force: bool = False,
 ) -> dict[str, Any]:
     """Train a model from labelled deployments, save it, and record the experiment.
 
@@ -571,6 +584,7 @@ def train(
     tracking_uri, experiment, register : MLflow store, experiment name, registered model name
     track : bool, False skips MLflow (for tests and quick trials)
     progress : callable, optional
+    force : bool, replace an existing ``out`` that is not an earlier model (never an input)
 
     Returns
     -------
@@ -582,6 +596,17 @@ def train(
     from .deployment import load_deployment
     from .model import save_model
 
+    # Refused before hours of describing, not after: a store, a table or any file that is
+    # not an earlier model is never replaced by a model.
+    check_output(
+        out,
+        option="--out",
+        suffixes=("",),
+        inputs=(*manifests, *label_tables, *((config_path,) if config_path else ())),
+        ours=_earlier_model,
+        what="a model file",
+        force=force,
+    )
     config = load_training_config(config_path)
     deployments = [load_deployment(m) for m in manifests]
     names = [d.name for d in deployments]
