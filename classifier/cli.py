@@ -134,6 +134,11 @@ def _cmd_score(args: argparse.Namespace) -> int:
     )
     for f in summary["failed"]:
         print(f"failed: {f['file']}: {f['error']}")
+    for f in summary["nonfinite"]:
+        print(
+            f"warning: {f['file']}: {f['samples']} samples are not numbers (NaN or infinite); they were scored "
+            "as zeros, and calls in the windows that hold them may be missed"
+        )
     print(CAUTION)
     if summary["failed"]:
         print(

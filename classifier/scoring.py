@@ -61,6 +61,7 @@ class FileResult:
     windows: int = 0
     rows: list[tuple] = field(default_factory=list)
     seconds: float = 0.0
+    nonfinite: int = 0  # NaN or infinite samples of this file, scored as zeros
 
 
 # Detections whose levels share one read of the audio: spans of at most this much recorded
@@ -274,7 +275,8 @@ def _score_file(
                     clipped,
                 )
             )
-    return FileResult(name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0)
+        nonfinite = reader.nonfinite_in(offset)
+    return FileResult(name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0, nonfinite)
 
 
 # Rows per call of the model: bounds the memory of one prediction on a long file.
@@ -508,7 +510,8 @@ def _score_deployment(
             say(f"{f.name} changed since it was scored (size or modification time); scoring it again")
         todo.append(f)
     # Files the manifest could not use are recorded as failed in this run.
-    failed = []
+    failed: list[dict] = []
+    nonfinite: list[dict] = []  # files with NaN or infinite samples, scored as zeros
     for fault in dep.faults:
         start = parse_file_start(fault.name, dep.timestamp_format)
         path = dep.audio_dir / fault.name
@@ -545,7 +548,10 @@ def _score_deployment(
             result.windows,
             result.rows,
             before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
+            nonfinite_samples=result.nonfinite,
         )
+        if result.nonfinite:
+            nonfinite.append({"file": rec.name, "samples": result.nonfinite})
         if n == die_after:
             _die(FAULT_AFTER_FILES, n)()
         if result.status == "failed":
@@ -565,6 +571,7 @@ def _score_deployment(
         "files": len(todo),
         "skipped": skipped,
         "failed": failed,
+        "nonfinite": nonfinite,
         "detections": int(total),
         "detections_now": stored,
         "recorded_hours": round(hours, 4),

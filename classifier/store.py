@@ -9,7 +9,8 @@ Schema (``SCHEMA_VERSION`` 1):
   classes, threshold floor, descriptor settings, package versions, host, start and end,
   status (``running`` or ``finished``).
 - ``run_files``: per run and file, ``done`` or ``failed`` with the error, the windows
-  scored and detections stored; a scoring run resumes from here.
+  scored, detections stored and non-finite samples met (scored as zeros); a scoring run
+  resumes from here.
 - ``detections``: candidate calls, the detection table of docs/formats.md; ``superseded`` marks detections of
   a file that changed and was scored again, kept because someone verified them.
 - ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
@@ -75,6 +76,7 @@ CREATE TABLE IF NOT EXISTS run_files (
     windows INTEGER NOT NULL DEFAULT 0,
     detections INTEGER NOT NULL DEFAULT 0,
     scored_utc TEXT NOT NULL,
+    nonfinite_samples INTEGER NOT NULL DEFAULT 0,
     PRIMARY KEY (run_id, file_id)
 );
 CREATE TABLE IF NOT EXISTS detections (
@@ -140,6 +142,10 @@ def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
         if tables and "meta" not in tables:
             raise InputError(f"{path}: an SQLite file, but not a callsieve store; choose another file")
         con.executescript(_SCHEMA)
+        # Stores made before run_files counted non-finite samples get the column (0).
+        columns = {r[1] for r in con.execute("PRAGMA table_info(run_files)")}
+        if "nonfinite_samples" not in columns:
+            con.execute("ALTER TABLE run_files ADD COLUMN nonfinite_samples INTEGER NOT NULL DEFAULT 0")
         row = con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
         if row is None:
             con.execute("INSERT INTO meta (key, value) VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
@@ -209,6 +215,7 @@ def replace_file_result(
     windows: int,
     rows: Iterable[tuple],
     before_commit: Callable[[], None] | None = None,
+    nonfinite_samples: int = 0,
 ) -> int:
     """Store one file's outcome in one transaction; return the number of detections stored.
 
@@ -235,11 +242,11 @@ def replace_file_result(
         )
         con.execute(
             "INSERT INTO run_files (run_id, file_id, status, error, size_bytes, mtime_ns, windows, detections, "
-            "scored_utc) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT(run_id, file_id) DO UPDATE SET "
-            "status=excluded.status, error=excluded.error, size_bytes=excluded.size_bytes, "
+            "scored_utc, nonfinite_samples) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT(run_id, file_id) "
+            "DO UPDATE SET status=excluded.status, error=excluded.error, size_bytes=excluded.size_bytes, "
             "mtime_ns=excluded.mtime_ns, windows=excluded.windows, detections=excluded.detections, "
-            "scored_utc=excluded.scored_utc",
-            (run_id, file_id, status, error, size_bytes, mtime_ns, windows, len(rows), now_utc()),
+            "scored_utc=excluded.scored_utc, nonfinite_samples=excluded.nonfinite_samples",
+            (run_id, file_id, status, error, size_bytes, mtime_ns, windows, len(rows), now_utc(), nonfinite_samples),
         )
         if before_commit is not None:
             before_commit()

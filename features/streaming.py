@@ -159,13 +159,29 @@ def read_blocks(
             else:
                 buf = buf[want_start - buf_start :]
             buf_start = want_start
+            block = np.ascontiguousarray(buf[: want_stop - buf_start])
+            _zero_nonfinite(block)
             yield AudioBlock(
-                np.ascontiguousarray(buf[: want_stop - buf_start]),
+                block,
                 buf_start,
                 core_start,
                 core_stop,
                 int(handle.samplerate),
             )
+
+
+def _zero_nonfinite(x: np.ndarray) -> np.ndarray:
+    """Set NaN and infinite samples of ``x`` to 0 in place; return their indices.
+
+    A float file can hold a NaN (a recorder fault, a broken conversion); left in, it
+    would turn the noise floor and every window within a minute of it into NaN and
+    silently lose the calls there. Zeros cost only the windows that hold them.
+    """
+    if np.isfinite(x).all():  # the common case: one pass, no allocation of indices
+        return np.empty(0, dtype=np.int64)
+    bad = np.flatnonzero(~np.isfinite(x))
+    x[bad] = 0.0
+    return bad
 
 
 class AudioReader:
@@ -194,6 +210,9 @@ class AudioReader:
         self.sample_rate_hz = int(self._handle.samplerate)
         self._position = 0
         self.start, self.stop = 0, self.frames  # the samples this reader can give
+        # Sample indices found NaN or infinite (and given as 0): a set, since context
+        # reads see some samples twice.
+        self.nonfinite: set[int] = set()
 
     def __enter__(self) -> AudioReader:
         return self
@@ -220,7 +239,11 @@ class AudioReader:
         self._position = start + got
         if got < stop - start:
             raise AudioReadError(self.path, f"truncated: header says {self.frames} samples, data ends at {start + got}")
-        return np.ascontiguousarray(data[:, self.channel])
+        x = np.ascontiguousarray(data[:, self.channel])
+        bad = _zero_nonfinite(x)
+        if bad.size:
+            self.nonfinite.update((start + bad).tolist())
+        return x
 
 
 class SegmentReader:
@@ -265,6 +288,10 @@ class SegmentReader:
         """Release the files."""
         for r, _ in self._parts:
             r.close()
+
+    def nonfinite_in(self, offset: int) -> int:
+        """Non-finite samples met so far in the part that starts at stream index ``offset``."""
+        return sum(len(r.nonfinite) for r, o in self._parts if o == offset)
 
     def read(self, start: int, stop: int) -> np.ndarray:
         """Stream samples [start, stop), clipped to [self.start, self.stop), float32."""

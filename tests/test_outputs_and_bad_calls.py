@@ -8,6 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 from callsieve.classifier.cli import main
 
@@ -116,3 +117,44 @@ def test_json_into_a_closed_pipe_is_quiet():
     done = subprocess.run(["bash", "-c", cmd], cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert done.stdout.startswith("{")
     assert "Traceback" not in done.stderr and "BrokenPipe" not in done.stderr, done.stderr
+
+
+def test_nan_samples_are_reported_and_lose_no_call_elsewhere(labelled, sweep_model, tmp_path, capsys):
+    # 5 NaN samples at 50 s of a float file: counted and reported for that file, scored as
+    # zeros, and every detection away from them (beyond a window and the peak-picking's
+    # context of windows, 10 s here) is the one the clean file gives. Before, the NaN
+    # spread through the minute-long noise floor and removed the calls from 21 s to 77 s.
+    import sqlite3
+
+    import soundfile as sf
+    from conftest import write_manifest
+
+    manifest, _, _ = labelled
+    src = sorted((manifest.parent / "audio").glob("*.wav"))[0]
+    x, fs = sf.read(src, dtype="float32")
+    sites = {}
+    for name, bad in (("clean", False), ("nan", True)):
+        site = tmp_path / name
+        (site / "audio").mkdir(parents=True)
+        write_manifest(site, name=f"{name}-site")
+        y = x.copy()
+        if bad:
+            y[50 * fs : 50 * fs + 5] = np.nan
+        sf.write(site / "audio" / src.name, y, fs, subtype="FLOAT")
+        db = tmp_path / f"{name}.db"
+        assert main(["score", str(sweep_model), "--deployment", str(site / "manifest.toml"), "--db", str(db)]) == 0
+        sites[name] = db
+    out = capsys.readouterr().out
+    assert "warning:" in out and "5 samples are not numbers" in out
+    rows = {}
+    for name, db in sites.items():
+        with sqlite3.connect(db) as con:
+            (count,) = con.execute("SELECT nonfinite_samples FROM run_files").fetchone()
+            assert count == (5 if name == "nan" else 0)
+            rows[name] = [
+                r
+                for r in con.execute("SELECT start_s, end_s, label, confidence FROM detections ORDER BY start_s")
+                if abs(r[0] - 50.0) > 10.0
+            ]
+    assert len(rows["clean"]) > 10
+    assert rows["nan"] == rows["clean"]
