@@ -598,6 +598,7 @@ def train(
 
     # Refused before hours of describing, not after: a store, a table or any file that is
     # not an earlier model is never replaced by a model.
+    Path(out).parent.mkdir(parents=True, exist_ok=True)
     check_output(
         out,
         option="--out",
