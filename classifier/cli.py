@@ -86,6 +86,8 @@ def _cmd_train(args: argparse.Namespace) -> int:
         force=args.force,
     )
     print(format_training_report(report))
+    for w in report["warnings"]:
+        print(f"callsieve: warning: {w}", file=sys.stderr)
     return EXIT_OK
 
 

@@ -643,7 +643,13 @@ def format_evaluation(metrics: dict[str, Any], target: str | None = None, cautio
         op = m["operating"]
         rec = op["recall"]
         ci = op["recall_ci95"]
-        rec_txt = "-" if rec is None else f"{rec:.2f} ({ci[0] or 0:.2f}-{ci[1] or 0:.2f})"
+        if rec is None:
+            rec_txt = "-"
+        elif ci[0] is None or ci[1] is None:
+            # Too few hours for an interval: say so rather than print a zero-width one.
+            rec_txt = f"{rec:.2f} (n/a: {metrics['effort_hours']} h)"
+        else:
+            rec_txt = f"{rec:.2f} ({ci[0]:.2f}-{ci[1]:.2f})"
         thr = m["threshold_for_target_precision"]
         hp = m["hour_presence"]
         hours = f"{hp['precision'] or 0:.2f}/{hp['recall'] or 0:.2f}"

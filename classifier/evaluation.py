@@ -185,6 +185,10 @@ def threshold_table(
     }
 
 
+#: Hours holding detections or calls that an interval by resampling hours needs.
+MIN_BOOTSTRAP_HOURS = 2
+
+
 def bootstrap_over_hours(
     tp_per_hour: np.ndarray,
     detections_per_hour: np.ndarray,
@@ -216,7 +220,9 @@ def bootstrap_over_hours(
     """
     counts = np.column_stack([tp_per_hour, detections_per_hour, found_per_hour, calls_per_hour]).astype(float)
     n_hours = counts.shape[0]
-    if n_hours == 0:
+    # Resampling fewer than two hours that hold anything gives the same sums every time:
+    # a zero-width interval that would look certain. No interval is honest there.
+    if np.count_nonzero(counts[:, 1] + counts[:, 3]) < MIN_BOOTSTRAP_HOURS:
         return {"precision": (float("nan"),) * 2, "recall": (float("nan"),) * 2}
     rng = np.random.default_rng(seed)
     sums = np.empty((n_resamples, 4))

@@ -548,6 +548,29 @@ def _pair_tables(label_paths: list[Path], deployments: list[Deployment]) -> list
     return sets
 
 
+#: Fewest labelled calls of a class, and fewest cross-validation groups, below which the
+#: figures of a training run are too uncertain to trust (common practice: a few dozen
+#: examples per class for a tree model; two groups per fold).
+MIN_CALLS_PER_CLASS = 20
+
+
+def training_warnings(sets: list[LabelledSet], validation: dict[str, Any], target: str | None) -> list[str]:
+    """What makes this training's own figures weak: few calls of a class, few groups."""
+    out = []
+    counts = Counter(a.label for s in sets for a in s.annotations if target is None or a.label == target)
+    for label, n in sorted(counts.items()):
+        if n < MIN_CALLS_PER_CLASS:
+            out.append(
+                f"only {n} labelled call(s) of {label!r} (fewer than {MIN_CALLS_PER_CLASS}): its cross-validated "
+                "figures are uncertain and the model may not generalise; label more before relying on it"
+            )
+    if validation["grouping"].startswith("none"):
+        out.append(f"cross-validation is not grouped ({validation['grouping']}); its figures are optimistic")
+    elif validation["n_folds"] < 3:
+        out.append(f"only {validation['n_folds']} cross-validation folds ({validation['grouping']})")
+    return out
+
+
 def _earlier_model(path: Path) -> bool:
     """A model file this command wrote: a skops archive holding a callsieve model's payload."""
     import zipfile
@@ -631,6 +654,7 @@ def train(
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],
         "cv_grouping": result.validation["grouping"],
+        "warnings": training_warnings(sets, result.validation, target),
         "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
     }
     if track:

@@ -217,3 +217,20 @@ def test_matching_equals_the_rule_read_literally_on_random_cases():
         dc = np.round(rng.uniform(0, 1, n_d), 1)  # ties in confidence on purpose
         got = match_detections(dk, ds, de, dc, tk, ts, te, 0.5)
         assert list(got) == _brute_force_match(dk, ds, de, dc, tk, ts, te, 0.5)
+
+
+def test_one_hour_gives_no_interval_rather_than_a_zero_width_one():
+    # Resampling one hour (or one hour that holds anything, among empty ones) repeats the
+    # same sums: the percentile interval would be zero-width and look certain. Common
+    # practice: no bootstrap interval from a single cluster.
+    one = bootstrap_over_hours(np.array([9]), np.array([10]), np.array([9]), np.array([12]), n_resamples=200)
+    assert all(np.isnan(v) for v in one["precision"] + one["recall"])
+    padded = bootstrap_over_hours(
+        np.array([9, 0, 0]), np.array([10, 0, 0]), np.array([9, 0, 0]), np.array([12, 0, 0]), n_resamples=200
+    )
+    assert all(np.isnan(v) for v in padded["precision"])
+    two = bootstrap_over_hours(
+        np.array([9, 3]), np.array([10, 6]), np.array([9, 3]), np.array([12, 4]), n_resamples=200
+    )
+    lo, hi = two["precision"]
+    assert lo < hi  # two hours with different precision (0.9 and 0.5) spread the replicates

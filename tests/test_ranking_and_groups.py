@@ -92,3 +92,23 @@ def test_tie_break_does_not_saturate_near_certainty():
     stored = (1.0 - _TIE_BREAK) * 1.0 + _TIE_BREAK * share  # an isotonic plateau at 1.0
     assert np.unique(stored).size == stored.size
     assert share.min() > 0.0 and share.max() < 1.0
+
+
+def test_training_warns_under_the_documented_minimum():
+    # Two labelled calls gave a model of AP 0.004 that was accepted silently; under the
+    # documented minimum (MIN_CALLS_PER_CLASS, common practice) and with ungrouped folds,
+    # training now says so.
+    from types import SimpleNamespace
+
+    from callsieve.classifier.training import MIN_CALLS_PER_CLASS, training_warnings
+
+    def notes(label, n):
+        return [SimpleNamespace(label=label) for _ in range(n)]
+
+    sets = [SimpleNamespace(annotations=notes("up", 2) + notes("down", MIN_CALLS_PER_CLASS))]
+    grouped = {"grouping": "file (12 groups)", "n_folds": 4}
+    warned = training_warnings(sets, grouped, None)
+    assert len(warned) == 1 and "only 2 labelled call(s) of 'up'" in warned[0]
+    assert training_warnings(sets, grouped, "down") == []
+    ungrouped = {"grouping": "none: only 1 group, folds are ungrouped", "n_folds": 4}
+    assert any("not grouped" in w for w in training_warnings(sets, ungrouped, "down"))
