@@ -176,6 +176,7 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
         tracking_uri=args.tracking_uri,
         complete_truth=args.complete_truth,
         progress=_progress(args),
+        deployment=args.deployment,
     )
     print(format_evaluation(metrics))
     print(f"metrics, tables and figures in {metrics['out']}")
@@ -294,6 +295,11 @@ def build_parser() -> argparse.ArgumentParser:
         "--complete-truth",
         action="store_true",
         help="the truth table covers every file of the deployment: files it does not name hold no call",
+    )
+    p.add_argument(
+        "--deployment",
+        metavar="MANIFEST",
+        help="the run's deployment manifest, where it has moved since scoring (default: as the store records)",
     )
     p.set_defaults(func=_cmd_evaluate)
     return parser

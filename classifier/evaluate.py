@@ -122,6 +122,7 @@ def evaluate(
     complete_truth: bool = False,
     n_resamples: int = 2000,
     progress: Callable[[str], None] | None = None,
+    deployment: str | Path | None = None,
 ) -> dict[str, Any]:
     """Judge a scoring run and the excess baseline against a truth table (docs/evaluation.md).
 
@@ -140,6 +141,9 @@ def evaluate(
         The truth table annotates every file of the deployment: the files it does not
         name hold no call and are judged too (their detections are false positives).
     n_resamples : int, bootstrap replicates over recording hours
+
+    deployment : str or Path, optional; the run's deployment manifest where it has moved
+        since scoring (same deployment name), else the store's record is used
 
     Returns
     -------
@@ -163,10 +167,20 @@ def evaluate(
         ).fetchone()
         params = json.loads(run["parameters"])
         settings = DescriptorSettings(**{k: v for k, v in params["settings"].items() if k != "version"})
-        manifest = Path(params.get("manifest") or run["manifest"])
+        # The store's own record is a resolved path; a moved deployment is named with
+        # --deployment (the same deployment: its name must match the run's).
+        manifest = Path(deployment) if deployment is not None else Path(run["manifest"] or params.get("manifest"))
         if not manifest.is_file():
-            raise InputError(f"{manifest}: the run's deployment manifest is gone; restore it to evaluate run {run_id}")
+            raise InputError(
+                f"{manifest}: the run's deployment manifest is not there; restore it, or give its new place "
+                f"with --deployment MANIFEST to evaluate run {run_id}"
+            )
         dep = load_deployment(manifest)
+        if dep.name != run["deployment"]:
+            raise InputError(
+                f"{manifest}: deployment {dep.name!r}, but run {run_id} scored {run['deployment']!r}; "
+                "give that deployment's manifest"
+            )
         unreadable: list[tuple[str, str]] = []
         truth = read_label_table(truth_csv, [dep], unreadable)
         for name, error in unreadable:

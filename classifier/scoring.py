@@ -325,7 +325,12 @@ def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: 
     if row is not None:
         con.execute("UPDATE runs SET status='running', finished_utc=NULL WHERE run_id=?", (row[0],))
         return int(row[0])
-    params = {"threshold": threshold, "settings": model.settings.to_dict(), "manifest": str(dep.manifest_path)}
+    # Resolved paths: the store must work from any folder, not only where score ran.
+    params = {
+        "threshold": threshold,
+        "settings": model.settings.to_dict(),
+        "manifest": str(dep.manifest_path.resolve()),
+    }
     cur = con.execute(
         "INSERT INTO runs (run_key, deployment_id, model_sha256, model_path, classes, target, threshold, "
         "parameters, versions, host, started_utc, status) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, 'running')",
@@ -333,7 +338,7 @@ def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: 
             key,
             dep_id,
             model.content_sha256,
-            str(model_path),
+            str(Path(model_path).resolve()),
             json.dumps(model.classes),
             model.target,
             threshold,

@@ -156,3 +156,31 @@ def test_a_class_without_truth_calls_is_reported_not_fatal(labelled, reference, 
     assert down["truth_calls"] == 0 and down["average_precision"] is None
     assert down["operating"]["recall"] is None and down["detections"] > 0
     assert m["classes"]["up"]["average_precision"] > 0.8
+
+
+def test_the_store_works_from_any_folder_and_a_moved_deployment_is_named(
+    labelled, sweep_model, tmp_path, monkeypatch, capsys
+):
+    # Scored from the manifest's folder with a relative path; evaluated from elsewhere.
+    # Then the deployment moves: evaluate says how to point at it, and --deployment does.
+    import shutil
+
+    manifest, labels, _ = labelled
+    site = tmp_path / "site"
+    shutil.copytree(manifest.parent, site)
+    db = tmp_path / "store.db"
+    monkeypatch.chdir(site)
+    assert main(["score", str(sweep_model), "--deployment", "manifest.toml", "--db", str(db), "--quiet"]) == 0
+    monkeypatch.chdir(tmp_path)
+    truth = site / labels.name
+    assert main(["evaluate", str(db), "--truth", str(truth), "--out", "ev1", "--quiet"]) == 0
+    moved = tmp_path / "moved"
+    site.rename(moved)
+    capsys.readouterr()
+    assert main(["evaluate", str(db), "--truth", str(moved / labels.name), "--out", "ev2", "--quiet"]) == 2
+    assert "--deployment" in capsys.readouterr().err
+    args = ["evaluate", str(db), "--truth", str(moved / labels.name), "--out", "ev3", "--quiet"]
+    assert main([*args, "--deployment", str(moved / "manifest.toml")]) == 0
+    first = json.loads((tmp_path / "ev1" / "metrics.json").read_text())
+    third = json.loads((tmp_path / "ev3" / "metrics.json").read_text())
+    assert first["classes"]["up"]["average_precision"] == third["classes"]["up"]["average_precision"]
