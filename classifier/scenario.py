@@ -516,32 +516,7 @@ def _write_site(site: RecorderSite, out: Path, hours: float, rng: np.random.Gene
         sf.write(audio / name, x.astype(np.float32), fs, subtype=site.subtype)
         truth.files.append({"file": name, "start_utc": start_utc, "duration_s": n / fs})
         for call, p, seg in placed:
-            rel0 = call.time_s - file_start
-            lo_i, hi_i = int(round(rel0 * fs)), int(round((rel0 + call.shape.duration_s) * fs))
-            low, high = _band_of(call.shape)
-            signal_part = p[lo_i - seg.start : hi_i - seg.start]
-            rl = float(band_spl_db(signal_part, fs, low, high))
-            nl = float(band_spl_db(noise[lo_i:hi_i], fs, low, high))
-            truth.calls.append(
-                {
-                    "deployment": site.name,
-                    "file": name,
-                    "start_s": round(rel0, 4),
-                    "end_s": round(rel0 + call.shape.duration_s, 4),
-                    "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
-                    "label": call.label,
-                    "low_hz": low,
-                    "high_hz": high,
-                    "source_level_db": round(call.source_level_db, 2),
-                    "range_m": round(call.range_m, 1),
-                    "source_depth_m": round(call.source_depth_m, 1),
-                    "received_level_db": round(rl, 2),
-                    "noise_level_db": round(nl, 2),
-                    "snr_db": round(rl - nl, 2),
-                    "clipped": int(bool(clipped[lo_i:hi_i].any())),
-                    "bout": call.bout,
-                }
-            )
+            truth.calls.append(_call_record(site.name, name, start_utc, file_start, call, p, seg, noise, clipped, fs))
     return truth
 
 
@@ -1044,29 +1019,10 @@ def _write_hard_site(hsite: HardSite, out: Path, hours: float, rng: np.random.Ge
         sf.write(audio / name, x.astype(np.float32), fs, subtype=site.subtype)
         truth.files.append({"file": name, "start_utc": start_utc, "duration_s": n / fs})
         for call, p, seg in placed:
-            rel0 = call.time_s - file_start
-            lo_i, hi_i = int(round(rel0 * fs)), int(round((rel0 + call.shape.duration_s) * fs))
-            low, high = _band_of(call.shape)
-            rl = float(band_spl_db(p[lo_i - seg.start : hi_i - seg.start], fs, low, high))
-            nl = float(band_spl_db(noise[lo_i:hi_i], fs, low, high))
+            record = _call_record(site.name, name, start_utc, file_start, call, p, seg, noise, clipped, fs)
             truth.calls.append(
-                {
-                    "deployment": site.name,
-                    "file": name,
-                    "start_s": round(rel0, 4),
-                    "end_s": round(rel0 + call.shape.duration_s, 4),
-                    "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
-                    "label": call.label,
-                    "low_hz": low,
-                    "high_hz": high,
-                    "source_level_db": round(call.source_level_db, 2),
-                    "range_m": round(call.range_m, 1),
-                    "source_depth_m": round(call.source_depth_m, 1),
-                    "received_level_db": round(rl, 2),
-                    "noise_level_db": round(nl, 2),
-                    "snr_db": round(rl - nl, 2),
-                    "clipped": int(bool(clipped[lo_i:hi_i].any())),
-                    "bout": call.bout,
+                record
+                | {
                     "harmonics_db": " ".join(f"{h:g}" for h in call.harmonics_db),
                     "envelope_db": " ".join(f"{e:g}" for e in call.envelope_db),
                     "labelled": 1,
@@ -1186,3 +1142,35 @@ def write_hard_scenario(out_dir: str | Path, seed: int = 7, hours: float = HARD_
     }
     (out / "scenario.json").write_text(json.dumps(summary, indent=2))
     return summary
+
+
+def _call_record(site_name, name, start_utc, file_start, call, p, seg, noise, clipped, fs) -> dict:
+    """One call's row of calls.csv: where it is, what it is, and its levels at the recorder.
+
+    The received level is the band rms of the call's own pressure ``p`` (a segment
+    starting at sample ``seg.start`` of the file), the noise level that of the noise alone
+    over the same samples, both in the call's band, dB re 1 µPa.
+    """
+    rel0 = call.time_s - file_start
+    lo_i, hi_i = int(round(rel0 * fs)), int(round((rel0 + call.shape.duration_s) * fs))
+    low, high = _band_of(call.shape)
+    rl = float(band_spl_db(p[lo_i - seg.start : hi_i - seg.start], fs, low, high))
+    nl = float(band_spl_db(noise[lo_i:hi_i], fs, low, high))
+    return {
+        "deployment": site_name,
+        "file": name,
+        "start_s": round(rel0, 4),
+        "end_s": round(rel0 + call.shape.duration_s, 4),
+        "start_utc": (start_utc + timedelta(seconds=rel0)).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z",
+        "label": call.label,
+        "low_hz": low,
+        "high_hz": high,
+        "source_level_db": round(call.source_level_db, 2),
+        "range_m": round(call.range_m, 1),
+        "source_depth_m": round(call.source_depth_m, 1),
+        "received_level_db": round(rl, 2),
+        "noise_level_db": round(nl, 2),
+        "snr_db": round(rl - nl, 2),
+        "clipped": int(bool(clipped[lo_i:hi_i].any())),
+        "bout": call.bout,
+    }
