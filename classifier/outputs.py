@@ -40,7 +40,7 @@ def check_output(
     out: str | Path,
     *,
     option: str,
-    suffixes: tuple[str, ...],
+    suffixes: tuple[str, ...] | None = None,
     inputs: tuple[str | Path, ...] = (),
     ours: Callable[[Path], bool] | None = None,
     what: str,
@@ -52,7 +52,7 @@ def check_output(
     ----------
     out : the path the user gave
     option : the option's name, for messages (``--out``)
-    suffixes : file name endings this writer can write (lower case, with the dot)
+    suffixes : file name endings this writer can write (lower case, with the dot); None: any
     inputs : paths the same command reads; writing over one of them is always refused
     ours : callable, optional; True for an existing file this writer made earlier, which
         may be replaced
@@ -69,7 +69,7 @@ def check_output(
     for source in inputs:
         if Path(source).resolve() == resolved:
             raise InputError(f"{path}: is also an input of this command; choose another {option}")
-    if not path.name.lower().endswith(suffixes):
+    if suffixes is not None and not path.name.lower().endswith(suffixes):
         raise InputError(f"{path}: {option} writes {what}; give a name ending in {' or '.join(suffixes)}")
     if not path.parent.is_dir():
         raise InputError(f"{path}: the folder {path.parent} does not exist; create it or choose another {option}")

@@ -625,7 +625,6 @@ def train(
     check_output(
         out,
         option="--out",
-        suffixes=("",),
         inputs=(*manifests, *label_tables, *((config_path,) if config_path else ())),
         ours=_earlier_model,
         what="a model file",

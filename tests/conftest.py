@@ -147,3 +147,28 @@ def reference(labelled, sweep_model, tmp_path_factory):
     db = tmp_path_factory.mktemp("ref") / "ref.db"
     summary = score_deployment(sweep_model, manifest, db)
     return db, summary
+
+
+def isolated_call_level_db(p, fs, call, busy, duration_s):
+    """Band level (dB re 1 µPa) of one call in calibrated pressure ``p``, noise taken out.
+
+    The band rms over the call less the median power of 1-s pieces of noise within 8 s,
+    clear of every call in ``busy`` ((start, end) in s); None where the call overlaps
+    another or fewer than 3 noise pieces remain (ISO 18405 SPL; incoherent power sum).
+    """
+    from callsieve.features.levels import band_spl_db
+
+    s0, s1 = float(call["start_s"]), float(call["end_s"])
+    # Two animals can call at once; only an isolated call can be measured alone.
+    if sum(a < s1 and b > s0 for a, b in busy) > 1:
+        return None
+    lo, hi = float(call["low_hz"]), float(call["high_hz"])
+    total = band_spl_db(p[int(round(s0 * fs)) : int(round(s1 * fs))], fs, lo, hi)
+    pieces = [
+        10 ** (band_spl_db(p[int(a * fs) : int((a + 1) * fs)], fs, lo, hi) / 10)
+        for a in np.arange(s0 - 8.0, s1 + 8.0, 1.0)
+        if a >= 0 and a + 1 <= duration_s and not any(a < e and a + 1 > b for b, e in busy)
+    ]
+    if len(pieces) < 3:
+        return None
+    return float(10 * np.log10(10 ** (total / 10) - np.median(pieces)))

@@ -27,6 +27,7 @@ from callsieve.classifier.scenario import (
 from callsieve.features.calibration import pressure_from_samples
 from callsieve.features.levels import band_spl_db
 from callsieve.features.synthesis import CallShape, flow_surge, harmonic_call_waveform
+from conftest import isolated_call_level_db
 from scipy import signal
 
 HOURS = 2.0  # test site 2 h (one full period of the level's sinusoid), training site 0.6 h
@@ -236,19 +237,9 @@ def test_received_levels_come_back_through_the_test_recorders_gain_curve(hard, t
         busy = [(float(c["start_s"]) - 0.3, float(c["end_s"]) + 0.3) for c in mine]
         p = pressure[f.name].astype(np.float64)
         for c in (c for c in mine if float(c["snr_db"]) > 10.0):
-            s0, s1 = float(c["start_s"]), float(c["end_s"])
-            if sum(a < s1 and b > s0 for a, b in busy) > 1:
+            signal_db = isolated_call_level_db(p, fs, c, busy, f.duration_s)
+            if signal_db is None:
                 continue
-            lo, hi = float(c["low_hz"]), float(c["high_hz"])
-            total = band_spl_db(p[int(round(s0 * fs)) : int(round(s1 * fs))], fs, lo, hi)
-            pieces = [
-                10 ** (band_spl_db(p[int(a * fs) : int((a + 1) * fs)], fs, lo, hi) / 10)
-                for a in np.arange(s0 - 8.0, s1 + 8.0, 1.0)
-                if a >= 0 and a + 1 <= f.duration_s and not any(a < e and a + 1 > b for b, e in busy)
-            ]
-            if len(pieces) < 3:
-                continue
-            signal_db = 10 * np.log10(10 ** (total / 10) - np.median(pieces))
             assert signal_db == pytest.approx(float(c["received_level_db"]), abs=1.0), c
             checked += 1
     assert checked >= 20

@@ -7,13 +7,12 @@ import hashlib
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
-import numpy as np
 import pytest
 import soundfile as sf
 from callsieve.classifier.deployment import load_deployment
 from callsieve.classifier.scenario import TARGET_LABEL, demo_sites, write_scenario
 from callsieve.features.calibration import pressure_from_samples
-from callsieve.features.levels import band_spl_db
+from conftest import isolated_call_level_db
 
 HOURS = 2.0
 
@@ -52,21 +51,9 @@ def test_received_levels_measured_back_through_each_recorders_calibration(scenar
             p = pressure_from_samples(x, fs, dep.chain)
             busy = [(float(c["start_s"]) - 0.3, float(c["end_s"]) + 0.3) for c in by_file[f.name]]
             for c in strong:
-                s0, s1 = float(c["start_s"]), float(c["end_s"])
-                # Two animals can call at once; only an isolated call can be measured alone.
-                if sum(a < s1 and b > s0 for a, b in busy) > 1:
+                signal_db = isolated_call_level_db(p, fs, c, busy, f.duration_s)
+                if signal_db is None:
                     continue
-                lo, hi = float(c["low_hz"]), float(c["high_hz"])
-                total = band_spl_db(p[int(round(s0 * fs)) : int(round(s1 * fs))], fs, lo, hi)
-                # Noise: median band power of 1-s pieces within 8 s, clear of every call.
-                pieces = []
-                for a in np.arange(s0 - 8.0, s1 + 8.0, 1.0):
-                    if a < 0 or a + 1 > f.duration_s or any(a < e and a + 1 > b for b, e in busy):
-                        continue
-                    pieces.append(10 ** (band_spl_db(p[int(a * fs) : int((a + 1) * fs)], fs, lo, hi) / 10))
-                if len(pieces) < 3:
-                    continue
-                signal_db = 10 * np.log10(10 ** (total / 10) - np.median(pieces))
                 assert signal_db == pytest.approx(float(c["received_level_db"]), abs=1.0), c
                 checked += 1
     assert checked >= 20
