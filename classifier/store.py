@@ -14,6 +14,12 @@ Schema (``SCHEMA_VERSION`` 1):
 - ``detections``: candidate calls, the detection table of docs/formats.md; ``superseded`` marks detections of
   a file that changed and was scored again, kept because someone verified them.
 - ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
+- ``review_samples``: a verification sample's design (run, label, strata rule,
+  allocation, seed, blind or not, its folder); ``review_strata``: per stratum, its
+  confidence edges, population N_h and sample size n_h; ``review_items``: each sampled
+  detection with its stratum, inclusion probability, draw order and rendered files;
+  ``audit_segments``: stretches of recording effort drawn for recall, with their
+  inclusion probabilities.
 """
 
 from __future__ import annotations
@@ -104,6 +110,45 @@ CREATE TABLE IF NOT EXISTS verdicts (
     note TEXT,
     recorded_utc TEXT NOT NULL,
     UNIQUE (detection_id, reviewer)
+);
+CREATE TABLE IF NOT EXISTS review_samples (
+    sample_id INTEGER PRIMARY KEY,
+    run_id INTEGER NOT NULL REFERENCES runs(run_id),
+    label TEXT NOT NULL,
+    design TEXT NOT NULL,
+    seed INTEGER NOT NULL,
+    blind INTEGER NOT NULL DEFAULT 0,
+    folder TEXT NOT NULL,
+    created_utc TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS review_strata (
+    sample_id INTEGER NOT NULL REFERENCES review_samples(sample_id),
+    stratum INTEGER NOT NULL,
+    low REAL NOT NULL,
+    high REAL NOT NULL,
+    population INTEGER NOT NULL,
+    sampled INTEGER NOT NULL,
+    PRIMARY KEY (sample_id, stratum)
+);
+CREATE TABLE IF NOT EXISTS review_items (
+    sample_id INTEGER NOT NULL REFERENCES review_samples(sample_id),
+    detection_id INTEGER NOT NULL REFERENCES detections(detection_id),
+    stratum INTEGER NOT NULL,
+    inclusion_probability REAL NOT NULL,
+    draw_order INTEGER NOT NULL,
+    image TEXT,
+    clip TEXT,
+    double_review INTEGER NOT NULL DEFAULT 0,
+    PRIMARY KEY (sample_id, detection_id)
+);
+CREATE TABLE IF NOT EXISTS audit_segments (
+    segment_id INTEGER PRIMARY KEY,
+    sample_id INTEGER NOT NULL REFERENCES review_samples(sample_id),
+    file_id INTEGER NOT NULL REFERENCES files(file_id),
+    start_s REAL NOT NULL,
+    end_s REAL NOT NULL,
+    stratum TEXT NOT NULL,
+    inclusion_probability REAL NOT NULL
 );
 """
 
