@@ -25,7 +25,7 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message: str) -> None:  # type: ignore[override]
         raise InputError(
-            f"{message} (see 'callsieve {self.prog.split()[-1]} --help')"
+            f"{message} (see 'callsieve {self.prog.split(None, 1)[1]} --help')"
             if " " in self.prog
             else f"{message} (see 'callsieve --help')"
         )
@@ -302,6 +302,10 @@ def build_parser() -> argparse.ArgumentParser:
         help="the run's deployment manifest, where it has moved since scoring (default: as the store records)",
     )
     p.set_defaults(func=_cmd_evaluate)
+
+    from .review_cli import add_review_verbs
+
+    add_review_verbs(verbs, common)
     return parser
 
 
