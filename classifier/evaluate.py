@@ -25,7 +25,7 @@ from callsieve.features.descriptors import DescriptorSettings
 from callsieve.features.streaming import AudioReadError
 
 from .baseline import ExcessDetector, call_levels, excess_detections
-from .deployment import load_deployment
+from .deployment import FileFault, load_deployment
 from .errors import InputError
 from .evaluation import (
     PrecisionRecall,
@@ -181,6 +181,15 @@ def evaluate(
                 f"{manifest}: deployment {dep.name!r}, but run {run_id} scored {run['deployment']!r}; "
                 "give that deployment's manifest"
             )
+        # A file the run scored that the listing no longer finds (deleted, moved, renamed)
+        # cannot be read now: its truth rows are left out and reported, like a broken file's.
+        listed = {f.name for f in dep.files} | {x.name for x in dep.faults}
+        for (name,) in con.execute(
+            "SELECT f.name FROM files f JOIN run_files rf ON rf.file_id=f.file_id AND rf.run_id=? ORDER BY f.name",
+            (run_id,),
+        ):
+            if name not in listed:
+                dep.faults.append(FileFault(name, "no longer in the deployment's audio folder"))
         unreadable: list[tuple[str, str]] = []
         truth = read_label_table(truth_csv, [dep], unreadable)
         for name, error in unreadable:
