@@ -36,6 +36,7 @@ from .labels import BACKGROUND
 from .model import CallModel, load_model
 from .store import (
     Transaction,
+    check_deployment_identity,
     now_utc,
     open_store,
     replace_file_result,
@@ -495,6 +496,9 @@ def _score_deployment(
     con = open_store(db)
     say = progress or (lambda line: None)
     with Transaction(con):
+        check_deployment_identity(
+            con, dep.name, str(Path(manifest).resolve()), [(f.name, f.size_bytes) for f in dep.files], db
+        )
         dep_id = upsert_deployment(con, dep.name, str(Path(manifest).resolve()), dep.sample_rate_hz, dep.channel)
         file_ids = {
             f.name: upsert_file(

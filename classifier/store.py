@@ -215,6 +215,35 @@ class Transaction:
         self.con.execute("ROLLBACK" if exc_type else "COMMIT")
 
 
+def check_deployment_identity(
+    con: sqlite3.Connection, name: str, manifest: str, files: Iterable[tuple[str, int]], store: str | Path
+) -> None:
+    """Refuse a deployment that reuses the name of another one in the store.
+
+    A deployment is its name *and* its files. A manifest at another path whose files
+    (name and size) share none with the stored deployment of that name is another
+    deployment; scoring it would merge two sites or seasons into one run. A manifest
+    that moved with its audio, or a deployment that grew new files, shares files and
+    is the same deployment.
+
+    Raises
+    ------
+    InputError
+        Naming both manifests and how to resolve it.
+    """
+    row = con.execute("SELECT deployment_id, manifest FROM deployments WHERE name=?", (name,)).fetchone()
+    if row is None or row["manifest"] == manifest:
+        return
+    stored = {(r[0], r[1]) for r in con.execute("SELECT name, size_bytes FROM files WHERE deployment_id=?", (row[0],))}
+    if not stored or stored & set(files):
+        return
+    raise InputError(
+        f"{manifest}: deployment name {name!r} is already in {store} for another deployment "
+        f"({row['manifest']}), and none of its {len(stored)} files is among this manifest's; "
+        "give this deployment its own name in [deployment] name, or use another store"
+    )
+
+
 def upsert_deployment(con: sqlite3.Connection, name: str, manifest: str, sample_rate_hz: int, channel: int) -> int:
     """Id of the deployment row, inserted or brought up to date."""
     con.execute(

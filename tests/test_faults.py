@@ -68,3 +68,29 @@ def test_evaluate_leaves_out_a_file_deleted_after_scoring_and_says_so(labelled, 
     m = json.loads((tmp_path / "e" / "metrics.json").read_text())
     assert m["files_judged"] == 2
     assert sum(c["truth_calls"] for c in m["classes"].values()) == 50  # conftest: 25 calls per file
+
+
+# --- the same deployment name for another deployment (issue: identity is name and files) ---
+
+
+def test_a_second_deployment_reusing_a_name_is_refused_naming_both_manifests(labelled, sweep_model, tmp_path, capsys):
+    """Two manifests named alike with no file in common are two deployments: refused, exit 2,
+    the store unchanged; the same deployment moved elsewhere with its audio carries on."""
+    names = _audio_names(labelled)
+    first = _site(labelled, tmp_path / "spring", names[:2])
+    other = _site(labelled, tmp_path / "autumn", names[2:4])
+    db = tmp_path / "store.db"
+    assert main(["score", str(sweep_model), "--deployment", str(first), "--db", str(db), "--quiet"]) == 0
+    before = _rows(db, "SELECT COUNT(*) FROM detections")[0][0]
+    code = main(["score", str(sweep_model), "--deployment", str(other), "--db", str(db), "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1
+    assert str(other) in err[0] and str(first) in err[0] and "its own name" in err[0]
+    assert _rows(db, "SELECT COUNT(*) FROM detections")[0][0] == before
+    assert _rows(db, "SELECT COUNT(*) FROM files") == [(2,)]
+    # The first deployment's folder moved: the same files, so the same deployment and run.
+    moved = tmp_path / "moved"
+    shutil.copytree(first.parent, moved)
+    summary = score_deployment(sweep_model, moved / "manifest.toml", db)
+    assert summary["skipped"] == 2 and summary["files"] == 0
+    assert _rows(db, "SELECT manifest FROM deployments") == [(str((moved / "manifest.toml").resolve()),)]
