@@ -10,9 +10,10 @@ from __future__ import annotations
 
 import csv
 import difflib
+import hashlib
 import re
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
@@ -81,6 +82,8 @@ class RecordedFile:
     info : AudioInfo
     size_bytes : int
     mtime_ns : int
+    head_overlap_s : float, s, time at the file's start that an earlier file already
+        recorded; detections starting there are left out (see ``set_aside_repeats``)
     """
 
     path: Path
@@ -89,6 +92,7 @@ class RecordedFile:
     info: AudioInfo
     size_bytes: int
     mtime_ns: int
+    head_overlap_s: float = 0.0
 
     @property
     def duration_s(self) -> float:
@@ -449,11 +453,86 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
             faults.append(FileFault(f.name, f"has {f.info.channels} channel(s); channel {channel} does not exist"))
         else:
             usable.append(f)
-    usable.sort(key=lambda f: (f.start_utc, f.name))
+    usable, repeats = set_aside_repeats(usable)
+    faults.extend(repeats)
     object.__setattr__(deployment, "files", usable)
     object.__setattr__(deployment, "faults", sorted(faults, key=lambda x: x.name))
     object.__setattr__(deployment, "sample_rate_hz", deployment_rate)
     return deployment
+
+
+# Bytes read from each end of a file to tell copies apart: with the size, enough to
+# catch a copied file without reading months of audio twice.
+_FINGERPRINT_BYTES = 1 << 20
+
+
+def content_fingerprint(path: Path, size_bytes: int) -> str:
+    """A hash of a file's first and last MiB and its size: equal for copies of one file."""
+    h = hashlib.sha256(str(size_bytes).encode())
+    with open(path, "rb") as fh:
+        h.update(fh.read(_FINGERPRINT_BYTES))
+        if size_bytes > _FINGERPRINT_BYTES:
+            fh.seek(max(size_bytes - _FINGERPRINT_BYTES, _FINGERPRINT_BYTES))
+            h.update(fh.read())
+    return h.hexdigest()
+
+
+def set_aside_repeats(
+    files: list[RecordedFile], tolerance_s: float = GAP_TOLERANCE_S
+) -> tuple[list[RecordedFile], list[FileFault]]:
+    """Resolve copied files and overlapping spans, so no stretch of sound is scored twice.
+
+    The rule (docs/formats.md §1, "Copies and overlaps"):
+
+    1. Files of the same size whose first and last MiB hash alike are copies: the first
+       in (start, name) order is kept, the others are set aside.
+    2. Files are then taken by start (the longer first at equal starts). A file whose
+       span lies within what earlier files already cover (to ``tolerance_s``) is set
+       aside; one that only starts inside it is kept, with ``head_overlap_s`` saying how
+       much of its start was already recorded: detections starting there are left out,
+       and effort counts that time once.
+
+    Parameters
+    ----------
+    files : list of RecordedFile
+    tolerance_s : float, s, clock resolution of the file names
+
+    Returns
+    -------
+    kept : list of RecordedFile, sorted by (start, name)
+    set_aside : list of FileFault, each naming the file kept in its place
+    """
+    order = sorted(files, key=lambda f: (f.start_utc, f.name))
+    faults: list[FileFault] = []
+    by_size = Counter(f.size_bytes for f in order)
+    seen: dict[str, str] = {}
+    unique = []
+    for f in order:
+        if by_size[f.size_bytes] > 1:
+            try:
+                key = content_fingerprint(f.path, f.size_bytes)
+            except OSError as exc:
+                faults.append(FileFault(f.name, f"cannot be read ({exc.strerror})"))
+                continue
+            if key in seen:
+                faults.append(FileFault(f.name, f"a copy of {seen[key]} (same size and content); left out"))
+                continue
+            seen[key] = f.name
+        unique.append(f)
+    kept: list[RecordedFile] = []
+    reach, holder = None, ""
+    for f in sorted(unique, key=lambda f: (f.start_utc, -f.duration_s, f.name)):
+        overlap = (reach - f.start_utc).total_seconds() if reach is not None else -1.0
+        if overlap > tolerance_s and f.end_utc <= reach + timedelta(seconds=tolerance_s):
+            faults.append(FileFault(f.name, f"its span lies within what {holder} recorded, which is kept; left out"))
+            continue
+        if overlap > tolerance_s:
+            f = replace(f, head_overlap_s=overlap)
+        kept.append(f)
+        if reach is None or f.end_utc > reach:
+            reach, holder = f.end_utc, f.name
+    kept.sort(key=lambda f: (f.start_utc, f.name))
+    return kept, faults
 
 
 def _scan(audio_dir: Path, glob: str, fmt: str, manifest: Path) -> tuple[list[RecordedFile], list[FileFault]]:

@@ -555,7 +555,8 @@ def _score_deployment(
             rec.size_bytes,
             rec.mtime_ns,
             result.windows,
-            result.rows,
+            # Time an earlier file already recorded (set_aside_repeats) is not scored twice.
+            [r for r in result.rows if r[0] >= rec.head_overlap_s],
             before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
             nonfinite_samples=result.nonfinite,
         )

@@ -94,3 +94,64 @@ def test_a_second_deployment_reusing_a_name_is_refused_naming_both_manifests(lab
     summary = score_deployment(sweep_model, moved / "manifest.toml", db)
     assert summary["skipped"] == 2 and summary["files"] == 0
     assert _rows(db, "SELECT manifest FROM deployments") == [(str((moved / "manifest.toml").resolve()),)]
+
+
+# --- copied audio and overlapping spans (docs/formats.md §1, "Copies and overlaps") ---
+
+
+def test_a_copied_file_is_set_aside_and_detections_are_not_doubled(labelled, sweep_model, reference, tmp_path):
+    """A copy under another name (another start time) is the same sound: one is kept."""
+    names = _audio_names(labelled)[:2]
+    manifest = _site(labelled, tmp_path / "site", names)
+    copy = "unit_20320105T050000Z.wav"  # five hours later by its name, same bytes
+    shutil.copy2(manifest.parent / "audio" / names[0], manifest.parent / "audio" / copy)
+    db = tmp_path / "store.db"
+    summary = score_deployment(sweep_model, manifest, db)
+    assert [f["file"] for f in summary["failed"]] == [copy]
+    assert names[0] in summary["failed"][0]["error"] and "copy" in summary["failed"][0]["error"]
+    ref_db = reference[0]
+    expected = _rows(
+        ref_db,
+        "SELECT COUNT(*) FROM detections d JOIN files f USING (file_id) WHERE f.name IN (?, ?)",
+        *names,
+    )[0][0]
+    assert summary["detections"] == expected  # the copy added none
+
+
+def test_a_file_with_another_files_start_is_set_aside(labelled, sweep_model, tmp_path):
+    """Two different files with the same start time: the span is recorded once."""
+    names = _audio_names(labelled)
+    manifest = _site(labelled, tmp_path / "site", names[:2])
+    # Another file's sound under the first file's start time (the name gives the start).
+    twin = names[0].replace(".wav", "_b.wav")
+    shutil.copy2(labelled[0].parent / "audio" / names[3], manifest.parent / "audio" / twin)
+    db = tmp_path / "store.db"
+    summary = score_deployment(sweep_model, manifest, db)
+    assert [f["file"] for f in summary["failed"]] == [twin]
+    assert "lies within" in summary["failed"][0]["error"]
+    assert _rows(db, "SELECT COUNT(*) FROM detections d JOIN files f USING (file_id) WHERE f.name=?", twin) == [(0,)]
+
+
+def test_a_partly_overlapping_file_is_kept_without_its_overlap(labelled, sweep_model, reference, tmp_path):
+    """A file starting 60 s before the previous one ends: kept, its first 60 s not scored twice."""
+    names = _audio_names(labelled)
+    # The labelled files are 4-minute files every 10 minutes; name the second to start 3 min
+    # after the first, one minute before the first ends.
+    early = names[1].replace("T001000Z", "T000300Z")
+    assert early != names[1]
+    manifest = _site(labelled, tmp_path / "site", names[:2], rename={names[1]: early})
+    db = tmp_path / "store.db"
+    summary = score_deployment(sweep_model, manifest, db)
+    assert summary["failed"] == []
+    starts = [
+        r[0] for r in _rows(db, "SELECT start_s FROM detections d JOIN files f USING (file_id) WHERE f.name=?", early)
+    ]
+    assert starts and min(starts) >= 60.0
+    # Beyond the overlap the file is scored as usual: the reference run's detections of the
+    # same file after 61 s are there (a second of slack for the window grid).
+    ref = _rows(
+        reference[0],
+        "SELECT COUNT(*) FROM detections d JOIN files f USING (file_id) WHERE f.name=? AND start_s >= 61",
+        names[1],
+    )[0][0]
+    assert sum(s >= 61 for s in starts) == ref
