@@ -136,6 +136,8 @@ def _cmd_score(args: argparse.Namespace) -> int:
     )
     for f in summary["failed"]:
         print(f"failed: {f['file']}: {f['error']}")
+    for f in summary["set_aside"]:
+        print(f"left out: {f['file']}: {f['error']}")
     for f in summary["nonfinite"]:
         print(
             f"warning: {f['file']}: {f['samples']} samples are not numbers (NaN or infinite); they were scored "

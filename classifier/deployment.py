@@ -111,6 +111,8 @@ class FileFault:
 
     name: str
     error: str
+    # True for a copy or a span already recorded (set_aside_repeats): no sound is lost.
+    repeat: bool = False
 
 
 @dataclass(frozen=True)
@@ -515,7 +517,7 @@ def set_aside_repeats(
                 faults.append(FileFault(f.name, f"cannot be read ({exc.strerror})"))
                 continue
             if key in seen:
-                faults.append(FileFault(f.name, f"a copy of {seen[key]} (same size and content); left out"))
+                faults.append(FileFault(f.name, f"a copy of {seen[key]} (same size and content); left out", True))
                 continue
             seen[key] = f.name
         unique.append(f)
@@ -524,7 +526,8 @@ def set_aside_repeats(
     for f in sorted(unique, key=lambda f: (f.start_utc, -f.duration_s, f.name)):
         overlap = (reach - f.start_utc).total_seconds() if reach is not None else -1.0
         if overlap > tolerance_s and f.end_utc <= reach + timedelta(seconds=tolerance_s):
-            faults.append(FileFault(f.name, f"its span lies within what {holder} recorded, which is kept; left out"))
+            reason = f"its span lies within what {holder} recorded, which is kept; left out"
+            faults.append(FileFault(f.name, reason, True))
             continue
         if overlap > tolerance_s:
             f = replace(f, head_overlap_s=overlap)

@@ -16,6 +16,7 @@ import pickle
 import platform
 import socket
 import time
+import uuid
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -29,7 +30,7 @@ from callsieve.features.pipeline import CLIP_THRESHOLD, describe_stream
 from callsieve.features.streaming import AudioReader, AudioReadError, SegmentReader
 
 from .calibrate import utc_iso
-from .deployment import GAP_TOLERANCE_S, Deployment, load_deployment, parse_file_start
+from .deployment import GAP_TOLERANCE_S, Deployment, RecordedFile, load_deployment, parse_file_start
 from .detections import Candidate, pick_detections
 from .errors import InputError
 from .labels import BACKGROUND
@@ -37,8 +38,12 @@ from .model import CallModel, load_model
 from .store import (
     Transaction,
     check_deployment_identity,
+    claim_file,
+    claim_holders,
     now_utc,
     open_store,
+    release_claims,
+    renew_claims,
     replace_file_result,
     upsert_deployment,
     upsert_file,
@@ -392,6 +397,11 @@ class Progress:
 FAULT_AFTER_FILES = "CALLSIEVE_FAULT_AFTER_FILES"
 FAULT_INSIDE_FILE = "CALLSIEVE_FAULT_INSIDE_FILE"
 FAULT_EXIT_STATUS = 137
+# Test hook: seconds to pause after storing each file, so that two processes overlap.
+FAULT_SLOW_STORE = "CALLSIEVE_FAULT_SLOW_STORE_S"
+# How often a process that has nothing left to claim looks whether the files another
+# process holds are done, s.
+_CLAIM_POLL_S = 1.0
 
 
 def _fault_point(variable: str) -> int | None:
@@ -442,7 +452,8 @@ def score_deployment(
     Returns
     -------
     dict
-        ``run_id``, ``files`` (scored now), ``skipped`` (already done), ``failed``
+        ``run_id``, ``files`` (scored now by this process; another process on the same
+        store takes its share), ``skipped`` (already done), ``failed``
         (list of {file, error}), ``detections`` (stored in the run), ``recorded_hours``,
         ``seconds``, ``hours_per_second``.
     """
@@ -507,6 +518,9 @@ def _score_deployment(
             for f in dep.files
         }
         run_id = _open_run(con, model, model_path, dep, dep_id, threshold)
+    # Results stored from now on, by this process or another on the same store, count as
+    # this invocation's: the files are claimed one by one (store.claim_file).
+    started = now_utc()
     done = {r["file_id"]: r for r in con.execute("SELECT * FROM run_files WHERE run_id=?", (run_id,))}
     todo = []
     skipped = 0
@@ -520,6 +534,7 @@ def _score_deployment(
         todo.append(f)
     # Files the manifest could not use are recorded as failed in this run.
     failed: list[dict] = []
+    set_aside: list[dict] = []  # copies and spans already recorded by another file
     nonfinite: list[dict] = []  # files with NaN or infinite samples, scored as zeros
     for fault in dep.faults:
         start = parse_file_start(fault.name, dep.timestamp_format)
@@ -539,34 +554,54 @@ def _score_deployment(
         replace_file_result(
             con, run_id, fid, "failed", fault.error, st.st_size if st else 0, st.st_mtime_ns if st else 0, 0, []
         )
-        failed.append({"file": fault.name, "error": fault.error})
+        (set_aside if fault.repeat else failed).append({"file": fault.name, "error": fault.error})
     records = {f.name: f for f in todo}
     meter = Progress(len(todo), sum(f.duration_s for f in todo), progress)
     t0 = time.perf_counter()
     stored = 0
-    for n, result in enumerate(_results(model, dep, todo, threshold, jobs, scheduler, block_s, pool), start=1):
-        rec = records[result.name]
-        stored += replace_file_result(
-            con,
-            run_id,
-            file_ids[rec.name],
-            result.status,
-            result.error,
-            rec.size_bytes,
-            rec.mtime_ns,
-            result.windows,
-            # Time an earlier file already recorded (set_aside_repeats) is not scored twice.
-            [r for r in result.rows if r[0] >= rec.head_overlap_s],
-            before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
-            nonfinite_samples=result.nonfinite,
-        )
-        if result.nonfinite:
-            nonfinite.append({"file": rec.name, "samples": result.nonfinite})
-        if n == die_after:
-            _die(FAULT_AFTER_FILES, n)()
-        if result.status == "failed":
-            failed.append({"file": rec.name, "error": result.error})
-        meter.add(rec.duration_s, len(result.rows))
+    owner = f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:12]}"
+    claims = open_store(db, any_thread=True)
+    slow = float(os.environ.get(FAULT_SLOW_STORE, "0") or 0)
+    scored_here: list[RecordedFile] = []
+
+    def claimed(files: list[RecordedFile]) -> Iterator[RecordedFile]:
+        # Asked lazily, as workers free up, so two processes interleave file by file.
+        for f in files:
+            if claim_file(claims, run_id, file_ids[f.name], owner, started) == "claimed":
+                scored_here.append(f)
+                yield f
+
+    n = 0
+    pending = todo
+    try:
+        while pending:
+            for result in _results(model, dep, claimed(pending), threshold, jobs, scheduler, block_s, pool):
+                n += 1
+                stored += _store_result(
+                    con, run_id, file_ids, records[result.name], result, failed, nonfinite, meter, die_inside, n
+                )
+                renew_claims(con, owner)
+                if n == die_after:
+                    _die(FAULT_AFTER_FILES, n)()
+                if slow:
+                    time.sleep(slow)
+            fresh = {
+                r[0]
+                for r in con.execute(
+                    "SELECT file_id FROM run_files WHERE run_id=? AND scored_utc>=?", (run_id, started)
+                )
+            }
+            pending = [f for f in todo if file_ids[f.name] not in fresh]
+            if pending:
+                holders = claim_holders(con, run_id, owner)
+                say(
+                    f"waiting for {len(pending)} file(s) that {', '.join(holders) or 'another process'} "
+                    "is scoring in this store"
+                )
+                time.sleep(_CLAIM_POLL_S)
+    finally:
+        release_claims(claims, owner)
+        claims.close()
     seconds = time.perf_counter() - t0
     scored = {r[0] for r in con.execute("SELECT file_id FROM run_files WHERE run_id=?", (run_id,))}
     pending = len(set(file_ids.values()) - scored)
@@ -574,13 +609,14 @@ def _score_deployment(
         con.execute("UPDATE runs SET status='finished', finished_utc=? WHERE run_id=?", (now_utc(), run_id))
     total = con.execute("SELECT COUNT(*) FROM detections WHERE run_id=? AND superseded=0", (run_id,)).fetchone()[0]
     con.close()
-    hours = sum(f.duration_s for f in todo) / 3600.0
+    hours = sum(f.duration_s for f in scored_here) / 3600.0
     return {
         "run_id": run_id,
         "deployment": dep.name,
-        "files": len(todo),
+        "files": len(scored_here),
         "skipped": skipped,
         "failed": failed,
+        "set_aside": set_aside,
         "nonfinite": nonfinite,
         "detections": int(total),
         "detections_now": stored,
@@ -588,6 +624,41 @@ def _score_deployment(
         "seconds": round(seconds, 2),
         "hours_per_second": round(hours / seconds, 3) if seconds > 0 else None,
     }
+
+
+def _store_result(
+    con: Any,
+    run_id: int,
+    file_ids: dict[str, int],
+    rec: RecordedFile,
+    result: FileResult,
+    failed: list[dict],
+    nonfinite: list[dict],
+    meter: Progress,
+    die_inside: int | None,
+    n: int,
+) -> int:
+    """Store one file's result in one transaction; return the detections stored."""
+    stored = replace_file_result(
+        con,
+        run_id,
+        file_ids[rec.name],
+        result.status,
+        result.error,
+        rec.size_bytes,
+        rec.mtime_ns,
+        result.windows,
+        # Time an earlier file already recorded (set_aside_repeats) is not scored twice.
+        [r for r in result.rows if r[0] >= rec.head_overlap_s],
+        before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
+        nonfinite_samples=result.nonfinite,
+    )
+    if result.nonfinite:
+        nonfinite.append({"file": rec.name, "samples": result.nonfinite})
+    if result.status == "failed":
+        failed.append({"file": rec.name, "error": result.error})
+    meter.add(rec.duration_s, len(result.rows))
+    return stored
 
 
 def _results(
@@ -601,9 +672,8 @@ def _results(
     pool: Any = None,
 ) -> Iterator[FileResult]:
     context = _continuity(dep)
-    args = [(f.path, f.name, context[f.name]) for f in todo]
-    if not args:
-        return
+    # Lazy: files are claimed in the store as they are taken (see _score_deployment).
+    args = ((f.path, f.name, context[f.name]) for f in todo)
     if scheduler:
         try:
             from dask.distributed import Client, as_completed

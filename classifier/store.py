@@ -14,16 +14,22 @@ Schema (``SCHEMA_VERSION`` 1):
 - ``detections``: candidate calls, the detection table of docs/formats.md; ``superseded`` marks detections of
   a file that changed and was scored again, kept because someone verified them.
 - ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
+- ``claims``: files a scoring process is working on now (owner, host, pid, last sign
+  of life), so that two processes on one store share the work instead of doing it twice.
 - ``review_samples``: a verification sample's design (run, label, strata rule,
   allocation, seed, blind or not, its folder); ``review_strata``: per stratum, its
   confidence edges, population N_h and sample size n_h; ``review_items``: each sampled
-  detection with its stratum, inclusion probability, draw order and rendered files;
+  detection with its stratum, inclusion probability, draw order and rendered files
+  (image, clip, and for low calls ``clip_fast``, time-compressed ``clip_speed`` times;
+  ``clip_gain_db`` the listening gain);
   ``audit_segments``: stretches of recording effort drawn for recall, with their
   inclusion probabilities.
 """
 
 from __future__ import annotations
 
+import os
+import socket
 import sqlite3
 from collections.abc import Callable, Iterable
 from datetime import UTC, datetime
@@ -111,6 +117,15 @@ CREATE TABLE IF NOT EXISTS verdicts (
     recorded_utc TEXT NOT NULL,
     UNIQUE (detection_id, reviewer)
 );
+CREATE TABLE IF NOT EXISTS claims (
+    run_id INTEGER NOT NULL REFERENCES runs(run_id),
+    file_id INTEGER NOT NULL REFERENCES files(file_id),
+    owner TEXT NOT NULL,
+    host TEXT NOT NULL,
+    pid INTEGER NOT NULL,
+    heartbeat_utc TEXT NOT NULL,
+    PRIMARY KEY (run_id, file_id)
+);
 CREATE TABLE IF NOT EXISTS review_samples (
     sample_id INTEGER PRIMARY KEY,
     run_id INTEGER NOT NULL REFERENCES runs(run_id),
@@ -158,8 +173,11 @@ def now_utc() -> str:
     return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
+def open_store(path: str | Path, create: bool = True, any_thread: bool = False) -> sqlite3.Connection:
     """Open (and, with ``create``, make) a detection store.
+
+    ``any_thread`` lets another thread use the connection (one at a time: the caller
+    serialises), as joblib's dispatcher does when it asks for the next file to score.
 
     Raises
     ------
@@ -178,7 +196,7 @@ def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
         # SQLite would take an empty file for an empty database and make a store of it.
         raise InputError(f"{path}: an empty file, not a detection store; make one with 'callsieve score'")
     try:
-        con = sqlite3.connect(path, timeout=30.0, isolation_level=None)
+        con = sqlite3.connect(path, timeout=30.0, isolation_level=None, check_same_thread=not any_thread)
         con.row_factory = sqlite3.Row
         con.execute("PRAGMA journal_mode=WAL")
         con.execute("PRAGMA foreign_keys=ON")
@@ -191,6 +209,11 @@ def open_store(path: str | Path, create: bool = True) -> sqlite3.Connection:
         columns = {r[1] for r in con.execute("PRAGMA table_info(run_files)")}
         if "nonfinite_samples" not in columns:
             con.execute("ALTER TABLE run_files ADD COLUMN nonfinite_samples INTEGER NOT NULL DEFAULT 0")
+        # Review items' listening aids: the time-compressed clip, its speed factor, the clip's gain (dB).
+        columns = {r[1] for r in con.execute("PRAGMA table_info(review_items)")}
+        for name, kind in (("clip_fast", "TEXT"), ("clip_speed", "REAL"), ("clip_gain_db", "REAL")):
+            if name not in columns:
+                con.execute(f"ALTER TABLE review_items ADD COLUMN {name} {kind}")
         row = con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
         if row is None:
             con.execute("INSERT INTO meta (key, value) VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
@@ -325,6 +348,76 @@ def replace_file_result(
         if before_commit is not None:
             before_commit()
     return len(rows)
+
+
+# A claim whose owner gave no sign of life for this long is taken over (s). A scoring
+# process renews its claims with every file it stores; a claim of a process that died on
+# this host is taken over at once.
+CLAIM_STALE_S = 1800.0
+
+
+def _claim_is_live(row: sqlite3.Row, host: str, stale_s: float) -> bool:
+    if row["host"] == host:
+        try:
+            os.kill(int(row["pid"]), 0)
+        except ProcessLookupError:
+            return False
+        except PermissionError:
+            pass  # alive, another user's
+    age = datetime.now(UTC) - datetime.strptime(row["heartbeat_utc"], "%Y-%m-%dT%H:%M:%S.%fZ").replace(tzinfo=UTC)
+    return age.total_seconds() < stale_s
+
+
+def claim_file(
+    con: sqlite3.Connection,
+    run_id: int,
+    file_id: int,
+    owner: str,
+    not_before_utc: str,
+    stale_s: float = CLAIM_STALE_S,
+) -> str:
+    """Claim one file of a run for this process, in one transaction.
+
+    Returns
+    -------
+    str
+        ``"claimed"``; ``"done"`` when a result was stored since ``not_before_utc`` (by any
+        process); ``"taken"`` when a live process holds it.
+    """
+    host, pid = socket.gethostname(), os.getpid()
+    with Transaction(con):
+        row = con.execute(
+            "SELECT 1 FROM run_files WHERE run_id=? AND file_id=? AND scored_utc>=?", (run_id, file_id, not_before_utc)
+        ).fetchone()
+        if row is not None:
+            return "done"
+        held = con.execute("SELECT * FROM claims WHERE run_id=? AND file_id=?", (run_id, file_id)).fetchone()
+        if held is not None and held["owner"] != owner and _claim_is_live(held, host, stale_s):
+            return "taken"
+        con.execute(
+            "INSERT INTO claims (run_id, file_id, owner, host, pid, heartbeat_utc) VALUES (?, ?, ?, ?, ?, ?) "
+            "ON CONFLICT(run_id, file_id) DO UPDATE SET owner=excluded.owner, host=excluded.host, "
+            "pid=excluded.pid, heartbeat_utc=excluded.heartbeat_utc",
+            (run_id, file_id, owner, host, pid, now_utc()),
+        )
+    return "claimed"
+
+
+def renew_claims(con: sqlite3.Connection, owner: str) -> None:
+    """A sign of life on every claim of ``owner``."""
+    con.execute("UPDATE claims SET heartbeat_utc=? WHERE owner=?", (now_utc(), owner))
+
+
+def release_claims(con: sqlite3.Connection, owner: str) -> None:
+    """Drop every claim of ``owner`` (its files are stored, or it stops)."""
+    con.execute("DELETE FROM claims WHERE owner=?", (owner,))
+
+
+def claim_holders(con: sqlite3.Connection, run_id: int, owner: str) -> list[str]:
+    """Other processes holding live claims in the run, as 'pid N on HOST'."""
+    host = socket.gethostname()
+    rows = con.execute("SELECT * FROM claims WHERE run_id=? AND owner<>?", (run_id, owner)).fetchall()
+    return sorted({f"pid {r['pid']} on {r['host']}" for r in rows if _claim_is_live(r, host, CLAIM_STALE_S)})
 
 
 def latest_run_id(con: sqlite3.Connection, run_id: int | None = None) -> int:
