@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sqlite3
 import sys
 import traceback
 from collections.abc import Sequence
@@ -330,6 +331,26 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
+    except sqlite3.OperationalError as exc:
+        if debug:
+            traceback.print_exc()
+        text = str(exc)
+        if "readonly" in text or "read-only" in text:
+            print(
+                f"callsieve: error: the detection store cannot be written ({text}); make the file and its "
+                "folder writable, or copy the store to a writable folder and use the copy",
+                file=sys.stderr,
+            )
+            return EXIT_INPUT
+        if "full" in text:
+            print(
+                f"callsieve: error: the disk holding the detection store is full ({text}); the file being "
+                "stored was rolled back and every finished file is kept: free space and run the same command again",
+                file=sys.stderr,
+            )
+            return EXIT_FAILED
+        print(f"callsieve: error: the detection store: {text} (run with --debug for details)", file=sys.stderr)
+        return EXIT_FAILED
     except KeyboardInterrupt:
         print("callsieve: error: interrupted; run the same command again to carry on", file=sys.stderr)
         return EXIT_FAILED

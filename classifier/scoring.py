@@ -15,6 +15,7 @@ import os
 import pickle
 import platform
 import socket
+import sqlite3
 import time
 import uuid
 from collections.abc import Callable, Iterator
@@ -600,7 +601,10 @@ def _score_deployment(
                 )
                 time.sleep(_CLAIM_POLL_S)
     finally:
-        release_claims(claims, owner)
+        try:
+            release_claims(claims, owner)
+        except sqlite3.Error:
+            pass  # a full or read-only store: the error that brought us here is the one to report
         claims.close()
     seconds = time.perf_counter() - t0
     scored = {r[0] for r in con.execute("SELECT file_id FROM run_files WHERE run_id=?", (run_id,))}

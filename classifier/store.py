@@ -235,7 +235,12 @@ class Transaction:
         return self.con
 
     def __exit__(self, exc_type: Any, *rest: Any) -> None:
-        self.con.execute("ROLLBACK" if exc_type else "COMMIT")
+        if exc_type is None:
+            self.con.execute("COMMIT")
+        elif self.con.in_transaction:
+            # SQLite has already rolled back after some errors (a full disk); a second
+            # ROLLBACK would hide the first error behind "no transaction is active".
+            self.con.execute("ROLLBACK")
 
 
 def check_deployment_identity(

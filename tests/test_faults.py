@@ -193,3 +193,82 @@ def test_two_scoring_processes_share_the_files_of_one_store(labelled, sweep_mode
         "SELECT f.name, start_s, end_s, label, confidence FROM detections d JOIN files f USING (file_id) ORDER BY 1, 2"
     )
     assert _rows(db, sql) == _rows(reference[0], sql)
+
+
+# --- a read-only store and a full disk (README fault table) ---
+
+
+def _read_only_connect(monkeypatch, db: Path) -> None:
+    """Every connection to ``db`` opens read-only, as on a read-only share (tests run as
+    root, for whom file permissions do not stop writes)."""
+    from callsieve.classifier import store
+
+    real = sqlite3.connect
+
+    def connect(path, *args, **kwargs):
+        if Path(path) == db:
+            return real(f"file:{db}?mode=ro", *args, uri=True, **kwargs)
+        return real(path, *args, **kwargs)
+
+    monkeypatch.setattr(store.sqlite3, "connect", connect)
+
+
+def test_scoring_into_a_read_only_store_is_one_line_and_exit_2(
+    labelled, sweep_model, reference, tmp_path, capsys, monkeypatch
+):
+    db = tmp_path / "store.db"
+    shutil.copy2(reference[0], db)
+    before = db.read_bytes()
+    _read_only_connect(monkeypatch, db)
+    code = main(["score", str(sweep_model), "--deployment", str(labelled[0]), "--db", str(db), "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "cannot be written" in err[0] and "writable" in err[0]
+    assert db.read_bytes() == before
+
+
+def test_a_full_disk_while_scoring_rolls_back_the_file_and_a_rerun_completes(
+    labelled, sweep_model, reference, tmp_path, capsys, monkeypatch
+):
+    """SQLite's page limit stands in for a full disk (SQLITE_FULL, "database or disk is full")."""
+    from callsieve.classifier import scoring
+
+    db = tmp_path / "store.db"
+    real = scoring.replace_file_result
+    calls = []
+
+    def filling(con, *args, **kwargs):
+        calls.append(1)
+        if len(calls) == 3:  # the disk fills while the third file is stored
+            pages = con.execute("PRAGMA page_count").fetchone()[0]
+            con.execute(f"PRAGMA max_page_count={pages}")
+        return real(con, *args, **kwargs)
+
+    monkeypatch.setattr(scoring, "replace_file_result", filling)
+    argv = ["score", str(sweep_model), "--deployment", str(labelled[0]), "--db", str(db), "--quiet"]
+    assert main(argv) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "full" in err[0] and "run the same command again" in err[0]
+    # The file whose results met the full disk rolled back whole; those before it are kept.
+    assert len(calls) >= 3
+    assert _rows(db, "SELECT COUNT(*) FROM run_files") == [(len(calls) - 1,)]
+    assert _rows(
+        db, "SELECT COUNT(*) FROM detections d LEFT JOIN run_files r USING (run_id, file_id) WHERE r.file_id IS NULL"
+    ) == [(0,)]
+    assert _rows(db, "SELECT COUNT(*) FROM claims") == [(0,)]  # released on the way out
+    monkeypatch.setattr(scoring, "replace_file_result", real)
+    assert main(argv) == 0
+    sql = (
+        "SELECT f.name, start_s, end_s, label, confidence FROM detections d JOIN files f USING (file_id) ORDER BY 1, 2"
+    )
+    assert _rows(db, sql) == _rows(reference[0], sql)
+
+
+def test_a_read_only_store_can_still_be_exported(reference, tmp_path, monkeypatch):
+    db = tmp_path / "store.db"
+    shutil.copy2(reference[0], db)
+    _read_only_connect(monkeypatch, db)
+    out = tmp_path / "detections.csv"
+    assert main(["export", str(db), "--out", str(out), "--quiet"]) == 0
+    with open(out) as fh:
+        rows = [r for r in fh if not r.startswith("#")]
+    assert len(rows) - 1 == reference[1]["detections"]
