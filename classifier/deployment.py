@@ -464,17 +464,20 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
 
 
 # Bytes read from each end of a file to tell copies apart: with the size, enough to
-# catch a copied file without reading months of audio twice.
+# catch a copied file without reading months of audio twice. Recorders write files of one
+# size, so every file is first told apart by a cheap look at its head (16 KiB, most of it
+# sound: two recordings of the sea differ there); only files alike there are read further.
 _FINGERPRINT_BYTES = 1 << 20
+_HEAD_BYTES = 1 << 14
 
 
-def content_fingerprint(path: Path, size_bytes: int) -> str:
-    """A hash of a file's first and last MiB and its size: equal for copies of one file."""
+def content_fingerprint(path: Path, size_bytes: int, nbytes: int = _FINGERPRINT_BYTES) -> str:
+    """A hash of a file's size and its first and last ``nbytes`` bytes: equal for copies of one file."""
     h = hashlib.sha256(str(size_bytes).encode())
     with open(path, "rb") as fh:
-        h.update(fh.read(_FINGERPRINT_BYTES))
-        if size_bytes > _FINGERPRINT_BYTES:
-            fh.seek(max(size_bytes - _FINGERPRINT_BYTES, _FINGERPRINT_BYTES))
+        h.update(fh.read(nbytes))
+        if size_bytes > nbytes:
+            fh.seek(max(size_bytes - nbytes, nbytes))
             h.update(fh.read())
     return h.hexdigest()
 
@@ -507,10 +510,18 @@ def set_aside_repeats(
     order = sorted(files, key=lambda f: (f.start_utc, f.name))
     faults: list[FileFault] = []
     by_size = Counter(f.size_bytes for f in order)
+    heads: dict[str, str] = {}
+    for f in order:
+        if by_size[f.size_bytes] > 1:
+            try:
+                heads[f.name] = content_fingerprint(f.path, f.size_bytes, _HEAD_BYTES)
+            except OSError as exc:
+                heads[f.name] = f"unreadable: {exc.strerror}"
+    by_head = Counter(heads.values())
     seen: dict[str, str] = {}
     unique = []
     for f in order:
-        if by_size[f.size_bytes] > 1:
+        if by_head[heads.get(f.name, "")] > 1:
             try:
                 key = content_fingerprint(f.path, f.size_bytes)
             except OSError as exc:
