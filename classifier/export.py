@@ -37,8 +37,8 @@ CAUTION = (
 _CHUNK = 10000
 
 
-def _iso(start_utc: str, seconds: float) -> str:
-    t = datetime.fromisoformat(start_utc.replace("Z", "+00:00")) + timedelta(seconds=seconds)
+def _iso(start: datetime, seconds: float) -> str:
+    t = start + timedelta(seconds=seconds)
     return t.strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
 
 
@@ -58,13 +58,17 @@ def _rows(con, run_id: int, label: str | None, min_confidence: float | None):
         args.append(min_confidence)
     sql += " ORDER BY f.start_utc, d.start_s, d.label"
     cur = con.execute(sql, args)
+    starts: dict[str, datetime] = {}  # each file's start parsed once, not per detection
     while True:
         chunk = cur.fetchmany(_CHUNK)
         if not chunk:
             return
         for r in chunk:
             (det, run, dep, name, s0, s1, fstart, lo, hi, lab, conf, rl, snr, clip) = tuple(r)
-            yield [det, run, dep, name, s0, s1, _iso(fstart, s0), _iso(fstart, s1), lo, hi, lab, conf, rl, snr, clip]
+            t0 = starts.get(fstart)
+            if t0 is None:
+                t0 = starts[fstart] = datetime.fromisoformat(fstart.replace("Z", "+00:00"))
+            yield [det, run, dep, name, s0, s1, _iso(t0, s0), _iso(t0, s1), lo, hi, lab, conf, rl, snr, clip]
 
 
 def _earlier_export(path: Path) -> bool:
