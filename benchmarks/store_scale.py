@@ -53,9 +53,9 @@ def write_files(folder: Path, n: int) -> Path:
     noise = rng.normal(0, 0.05, (64, 2000)).astype(np.float32)
     for k in range(n):
         name = f"scale_{t0 + timedelta(minutes=15 * k):%Y%m%dT%H%M%SZ}.wav"
-        # 64 different noises, each file's own head changed: no two files alike.
+        # 64 different noises, each file's number written into its first samples: no two alike.
         x = noise[k % 64].copy()
-        x[:4] += (k + 1) * 1e-4
+        x[:6] = [int(d) / 10 for d in f"{k:06d}"]
         sf.write(folder / "audio" / name, x, 2000, subtype="PCM_16")
     (folder / "manifest.toml").write_text(MANIFEST)
     return folder / "manifest.toml"

@@ -1,0 +1,258 @@
+"""Estimates from a verified stratified sample: precision, expected true detections, recall,
+call density, thresholds with a guarantee, a confidence calibration and presence.
+
+Pure functions over arrays; the store and the command live in ``estimate.py``. Strata are
+always given lowest confidence first. Formulas and check values: the survey-sampling
+references of the developer notes (Cochran 1977 ch. 5; Korn & Graubard 1998; Wilson 1927;
+Angelopoulos et al. 2021; Navine et al. 2024; Wood & Kahl 2024; Royle & Link 2006).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from .evaluation import wilson_interval
+
+__all__ = [
+    "StratifiedProportion",
+    "stratified_proportion",
+    "clopper_pearson",
+    "korn_graubard_interval",
+    "precision_above",
+    "guaranteed_threshold_index",
+    "point_threshold_index",
+    "ratio_estimate",
+    "call_density",
+    "fit_confidence_calibration",
+    "score_for_probability",
+    "presence_probability",
+    "occupancy_likelihood",
+    "wilson_interval",
+]
+
+
+@dataclass(frozen=True)
+class StratifiedProportion:
+    """A stratified estimate of a proportion.
+
+    Attributes
+    ----------
+    estimate : float, the proportion (0..1), NaN with no verified item
+    variance : float, its estimated variance
+    population : int, units in the strata it covers
+    sampled : int, verified units (yes or no) in those strata
+    """
+
+    estimate: float
+    variance: float
+    population: int
+    sampled: int
+
+    @property
+    def standard_error(self) -> float:
+        """Standard error of the estimate."""
+        return float(np.sqrt(self.variance)) if np.isfinite(self.variance) else float("nan")
+
+    @property
+    def effective_sample_size(self) -> float:
+        """Korn & Graubard's n* = p̂q̂ / v(p̂); the verified count where the variance is 0."""
+        pq = self.estimate * (1.0 - self.estimate)
+        if not np.isfinite(pq):
+            return float("nan")
+        if self.variance > 0 and pq > 0:
+            return pq / self.variance
+        return float(self.sampled)
+
+
+def stratified_proportion(
+    population: np.ndarray, sampled: np.ndarray, correct: np.ndarray, finite_population: bool = True
+) -> StratifiedProportion:
+    """Stratified estimate of a proportion and its variance (Cochran 1977, ch. 5).
+
+    Parameters
+    ----------
+    population : array of int, N_h, units (detections) in each stratum
+    sampled : array of int, n_h, units verified (yes or no) in each stratum
+    correct : array of int, k_h, verified units found correct
+    finite_population : bool, apply (1 − n_h/N_h)
+
+    Returns
+    -------
+    StratifiedProportion
+        p̂_st = Σ W_h p̂_h, v = Σ W_h² (1 − f_h) p̂_h q̂_h / (n_h − 1). A stratum with units
+        but no verified one makes the estimate NaN (nothing can stand in for it); a stratum
+        with one verified unit adds no variance term (there is no spread to estimate from).
+    """
+    N = np.asarray(population, float)
+    n = np.asarray(sampled, float)
+    k = np.asarray(correct, float)
+    total = N.sum()
+    if total <= 0:
+        return StratifiedProportion(float("nan"), float("nan"), 0, int(n.sum()))
+    live = N > 0
+    if np.any(live & (n <= 0)):
+        return StratifiedProportion(float("nan"), float("nan"), int(total), int(n.sum()))
+    W = np.where(live, N / total, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p = np.where(live, k / np.where(n > 0, n, 1.0), 0.0)
+        fpc = 1.0 - n / np.where(N > 0, N, 1.0) if finite_population else np.ones_like(N)
+        term = np.where(live & (n > 1), W**2 * fpc * p * (1 - p) / (n - 1), 0.0)
+    return StratifiedProportion(float(np.sum(W * p)), float(np.sum(term)), int(total), int(n.sum()))
+
+
+def clopper_pearson(x: float, n: float, confidence_level: float = 0.95, one_sided: bool = False) -> tuple[float, float]:
+    """Clopper–Pearson interval for x successes of n, x and n possibly fractional.
+
+    One-sided: the lower bound at ``confidence_level`` and an upper bound of 1.
+    """
+    alpha = 1.0 - confidence_level
+    tail = alpha if one_sided else alpha / 2.0
+    if not (np.isfinite(x) and np.isfinite(n)) or n <= 0:
+        return float("nan"), float("nan")
+    low = 0.0 if x <= 0 else float(stats.beta.ppf(tail, x, n - x + 1.0))
+    if one_sided:
+        return low, 1.0
+    high = 1.0 if x >= n else float(stats.beta.ppf(1.0 - tail, x + 1.0, n - x))
+    return low, high
+
+
+def korn_graubard_interval(
+    est: StratifiedProportion, confidence_level: float = 0.95, one_sided: bool = False
+) -> tuple[float, float]:
+    """Korn & Graubard (1998): Clopper–Pearson on the effective sample n* = p̂q̂/v, x* = n*p̂."""
+    n_star = est.effective_sample_size
+    if not np.isfinite(n_star) or n_star <= 0:
+        return float("nan"), float("nan")
+    return clopper_pearson(n_star * est.estimate, n_star, confidence_level, one_sided)
+
+
+def precision_above(
+    population: np.ndarray, sampled: np.ndarray, correct: np.ndarray, first: int
+) -> StratifiedProportion:
+    """Precision of every detection in strata ``first`` and above (strata lowest first)."""
+    return stratified_proportion(
+        np.asarray(population)[first:], np.asarray(sampled)[first:], np.asarray(correct)[first:]
+    )
+
+
+def point_threshold_index(
+    population: np.ndarray, sampled: np.ndarray, correct: np.ndarray, target: float
+) -> int | None:
+    """The lowest stratum whose precision-above point estimate reaches ``target``, or None."""
+    for h in range(len(population)):
+        est = precision_above(population, sampled, correct, h)
+        if np.isfinite(est.estimate) and est.estimate >= target:
+            return h
+    return None
+
+
+def guaranteed_threshold_index(
+    population: np.ndarray, sampled: np.ndarray, correct: np.ndarray, target: float, confidence_level: float = 0.95
+) -> int | None:
+    """Fixed-sequence testing from the top stratum down (Angelopoulos et al. 2021).
+
+    At each threshold, "precision < target" is rejected when the one-sided Korn–Graubard
+    lower bound reaches ``target``; the first failure stops the sequence. Returns the
+    lowest stratum reached, or None when even the top one fails. The family-wise error is
+    at most 1 − ``confidence_level`` without a multiplicity correction, because the
+    hypotheses are tested in a fixed order.
+    """
+    chosen = None
+    for h in range(len(population) - 1, -1, -1):
+        est = precision_above(population, sampled, correct, h)
+        low, _ = korn_graubard_interval(est, confidence_level, one_sided=True)
+        if not (np.isfinite(low) and low >= target):
+            break
+        chosen = h
+    return chosen
+
+
+def ratio_estimate(
+    numerator: np.ndarray, denominator: np.ndarray, sampling_fraction: float = 0.0, confidence_level: float = 0.95
+) -> tuple[float, float, float, float]:
+    """Ratio R = Σ y_i / Σ x_i over sampled clusters, with its linearised variance.
+
+    Cochran (1977) §6.3: v(R) = (1 − f) / (n x̄²) · Σ (y_i − R x_i)² / (n − 1). Used for
+    recall over audit segments (y: annotated calls matched, x: annotated calls).
+
+    Returns
+    -------
+    ratio, standard_error, low, high : float
+        A normal interval clipped to 0..1; NaN where Σ x = 0, and no interval from one cluster.
+    """
+    y, x = np.asarray(numerator, float), np.asarray(denominator, float)
+    n = y.size
+    if n == 0 or x.sum() <= 0:
+        return float("nan"), float("nan"), float("nan"), float("nan")
+    r = y.sum() / x.sum()
+    if n < 2:
+        return float(r), float("nan"), float("nan"), float("nan")
+    xbar = x.mean()
+    v = (1.0 - sampling_fraction) / (n * xbar**2) * np.sum((y - r * x) ** 2) / (n - 1)
+    se = float(np.sqrt(v))
+    z = float(stats.norm.ppf(1.0 - (1.0 - confidence_level) / 2.0))
+    return float(r), se, float(max(r - z * se, 0.0)), float(min(r + z * se, 1.0))
+
+
+def call_density(weights: np.ndarray, positive_rate: np.ndarray) -> float:
+    """Share of windows holding a call, Σ_b w_b P(+ | b) (Navine et al. 2024)."""
+    w, p = np.asarray(weights, float), np.asarray(positive_rate, float)
+    return float(np.sum(w * p))
+
+
+def _logit(p: np.ndarray) -> np.ndarray:
+    p = np.clip(np.asarray(p, float), 1e-6, 1 - 1e-6)
+    return np.log(p / (1 - p))
+
+
+def fit_confidence_calibration(confidence: np.ndarray, correct: np.ndarray, weight: np.ndarray | None = None):
+    """Logistic fit logit P(correct) = β₀ + β₁ logit(confidence) (Wood & Kahl 2024).
+
+    Parameters
+    ----------
+    confidence : array, the model's confidences of the verified detections (0..1)
+    correct : array of bool, the verdicts (yes → True, no → False)
+    weight : array, optional, 1/inclusion probability, so the fit describes the run
+
+    Returns
+    -------
+    (beta0, beta1) : tuple of float, or None with fewer than two of each verdict
+    """
+    y = np.asarray(correct, bool)
+    if y.sum() < 2 or (~y).sum() < 2:
+        return None
+    from sklearn.linear_model import LogisticRegression
+
+    x = _logit(confidence).reshape(-1, 1)
+    # Unpenalised: the coefficients are the estimate, not a regularised prediction rule.
+    fit = LogisticRegression(C=np.inf, max_iter=1000).fit(x, y, sample_weight=weight)
+    return float(fit.intercept_[0]), float(fit.coef_[0, 0])
+
+
+def score_for_probability(p: float, beta0: float, beta1: float) -> float:
+    """The confidence at which the calibrated probability of being correct is ``p``."""
+    z = (np.log(p / (1 - p)) - beta0) / beta1
+    return float(1.0 / (1.0 + np.exp(-z)))
+
+
+def presence_probability(precisions: list[np.ndarray]) -> np.ndarray:
+    """Per unit of time (hour, day), the chance it holds at least one true detection.
+
+    Parameters
+    ----------
+    precisions : list of arrays, per unit the estimated precision of each of its
+        detections (its stratum's), taken as independent
+
+    Returns
+    -------
+    array, 1 − Π (1 − p_j) per unit (0 for a unit without detections)
+    """
+    return np.array([1.0 - float(np.prod(1.0 - np.asarray(p, float))) for p in precisions])
+
+
+def occupancy_likelihood(y: int, surveys: int, psi: float, p11: float, p10: float) -> float:
+    """Royle & Link (2006): L(y) = ψ Bin(y; K, p₁₁) + (1 − ψ) Bin(y; K, p₁₀)."""
+    return float(psi * stats.binom.pmf(y, surveys, p11) + (1 - psi) * stats.binom.pmf(y, surveys, p10))
