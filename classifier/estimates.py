@@ -173,15 +173,19 @@ def guaranteed_threshold_index(
 def ratio_estimate(
     numerator: np.ndarray, denominator: np.ndarray, sampling_fraction: float = 0.0, confidence_level: float = 0.95
 ) -> tuple[float, float, float, float]:
-    """Ratio R = Σ y_i / Σ x_i over sampled clusters, with its linearised variance.
+    """A proportion R = Σ y_i / Σ x_i over sampled clusters, with its linearised variance.
 
     Cochran (1977) §6.3: v(R) = (1 − f) / (n x̄²) · Σ (y_i − R x_i)² / (n − 1). Used for
-    recall over audit segments (y: annotated calls matched, x: annotated calls).
+    recall over audit segments (y: annotated calls matched, x: annotated calls). The
+    interval is Korn & Graubard's (1998) with their degrees-of-freedom adjustment: a
+    Clopper–Pearson interval on the effective sample n* (z / t_{n−1})², n* = R(1 − R)/v.
+    Calls cluster in time, so few segments hold most of them; in simulation a normal
+    interval covered 90–93 % where this one covers 94–95 % (tests/test_estimates.py).
 
     Returns
     -------
     ratio, standard_error, low, high : float
-        A normal interval clipped to 0..1; NaN where Σ x = 0, and no interval from one cluster.
+        NaN where Σ x = 0, and no interval from one cluster.
     """
     y, x = np.asarray(numerator, float), np.asarray(denominator, float)
     n = y.size
@@ -192,9 +196,11 @@ def ratio_estimate(
         return float(r), float("nan"), float("nan"), float("nan")
     xbar = x.mean()
     v = (1.0 - sampling_fraction) / (n * xbar**2) * np.sum((y - r * x) ** 2) / (n - 1)
-    se = float(np.sqrt(v))
-    z = float(stats.norm.ppf(1.0 - (1.0 - confidence_level) / 2.0))
-    return float(r), se, float(max(r - z * se, 0.0)), float(min(r + z * se, 1.0))
+    tail = 1.0 - (1.0 - confidence_level) / 2.0
+    n_star = r * (1 - r) / v if v > 0 and 0 < r < 1 else float(x.sum())
+    n_star *= (stats.norm.ppf(tail) / stats.t.ppf(tail, n - 1)) ** 2
+    low, high = clopper_pearson(n_star * r, n_star, confidence_level)
+    return float(r), float(np.sqrt(v)), low, high
 
 
 def call_density(weights: np.ndarray, positive_rate: np.ndarray) -> float:
