@@ -186,6 +186,47 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_estimate(args: argparse.Namespace) -> int:
+    from .estimate import estimate_run, format_estimate
+
+    out = None
+    if args.out is not None:
+        out = Path(args.out)
+        if out.exists() and not out.is_dir():
+            raise InputError(f"--out {out}: is a file; give a folder for the estimate's outputs")
+    result = estimate_run(
+        args.db,
+        run_id=args.run,
+        label=args.label,
+        target_precision=args.target_precision,
+        sample_id=args.sample,
+        audit=args.audit,
+    )
+    if out is not None:
+        from .plots import confidence_calibration_figure, save, verified_precision_figure
+
+        out.mkdir(parents=True, exist_ok=True)
+        tmp = out / "estimate.json.partial"
+        tmp.write_text(json.dumps(result, indent=2, ensure_ascii=False) + "\n")
+        tmp.replace(out / "estimate.json")
+        save(
+            verified_precision_figure(result["thresholds"], result["label"], args.target_precision),
+            out / "precision-by-threshold.png",
+        )
+        save(
+            confidence_calibration_figure(result["strata"], result["calibration"]["logistic"], result["label"]),
+            out / "confidence-calibration.png",
+        )
+    if args.json:
+        json.dump(result, sys.stdout, indent=2, ensure_ascii=False)
+        sys.stdout.write("\n")
+    else:
+        print(format_estimate(result))
+    if result["drift"]["flag"]:
+        print(f"callsieve: warning: {result['drift']['message']}", file=sys.stderr)
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of every verb."""
     common = argparse.ArgumentParser(add_help=False)
@@ -305,6 +346,27 @@ def build_parser() -> argparse.ArgumentParser:
         help="the run's deployment manifest, where it has moved since scoring (default: as the store records)",
     )
     p.set_defaults(func=_cmd_evaluate)
+
+    p = verbs.add_parser(
+        "estimate", parents=[common], help="precision, recall, thresholds and presence from verified detections"
+    )
+    p.add_argument("db", metavar="DB", help="detection store with a verification sample and verdicts")
+    p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
+    p.add_argument("--label", metavar="L", help="class the sample verified (default: the latest sample's)")
+    p.add_argument("--sample", type=int, metavar="ID", help="verification sample (default: the run's latest)")
+    p.add_argument(
+        "--target-precision",
+        type=float,
+        default=0.9,
+        metavar="P",
+        help="precision the reported thresholds must reach (default 0.9)",
+    )
+    p.add_argument(
+        "--audit", metavar="CSV", help="label table of every call annotated in the sample's audit segments, for recall"
+    )
+    p.add_argument("--out", metavar="DIR", help="also write estimate.json and the figures into this folder")
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
+    p.set_defaults(func=_cmd_estimate)
 
     from .review_cli import add_review_verbs
 

@@ -18,6 +18,8 @@ __all__ = [
     "precision_recall_figure",
     "threshold_figure",
     "recall_by_level_figure",
+    "verified_precision_figure",
+    "confidence_calibration_figure",
 ]
 
 _DPI = 110
@@ -205,5 +207,70 @@ def recall_by_level_figure(rows: list[dict], classes: list[str], where: str):
         f"Recall against SNR and received level, {where}\n(95 % Wilson intervals; grey numbers: truth calls per bin)",
         fontsize=10,
     )
+    fig.tight_layout()
+    return fig
+
+
+def verified_precision_figure(thresholds: list[dict], label: str, target: float | None):
+    """Precision (and recall, where audits exist) above each threshold, with 95 % intervals.
+
+    Parameters
+    ----------
+    thresholds : list of dict, the ``thresholds`` of ``estimate_run``
+    label : str, the class verified
+    target : float, optional, the target precision, drawn as a line
+    """
+    plt = pyplot()
+    t = np.array([r["threshold"] for r in thresholds], float)
+    fig, ax = plt.subplots(figsize=(6.0, 3.8))
+    for key, style, name in (("precision", "-o", "precision above"), ("recall", "--s", "recall (audits)")):
+        value = np.array([np.nan if r[key] is None else r[key] for r in thresholds], float)
+        if np.all(np.isnan(value)):
+            continue
+        low = np.array([np.nan if r[f"{key}_low"] is None else r[f"{key}_low"] for r in thresholds], float)
+        high = np.array([np.nan if r[f"{key}_high"] is None else r[f"{key}_high"] for r in thresholds], float)
+        line = ax.plot(t, value, style, color="black" if key == "precision" else "0.45", label=name)[0]
+        ax.fill_between(t, low, high, color=line.get_color(), alpha=0.15, step=None)
+    if target is not None:
+        ax.axhline(target, color="0.3", linestyle=":", linewidth=1, label=f"target {target:g}")
+    ax.set_xlabel("threshold (confidence)")
+    ax.set_ylabel("estimate, 95 % interval")
+    ax.set_ylim(0, 1.02)
+    ax.set_title(f"{label}: verified precision above each stratum's edge")
+    ax.legend(loc="lower right", fontsize=8)
+    fig.tight_layout()
+    return fig
+
+
+def confidence_calibration_figure(strata: list[dict], logistic: dict | None, label: str):
+    """The model's mean confidence per stratum against verified precision, with a logistic fit.
+
+    Parameters
+    ----------
+    strata : list of dict, the ``strata`` of ``estimate_run``
+    logistic : dict, optional, ``beta0`` and ``beta1`` of logit P(yes) = β₀ + β₁ logit(confidence)
+    label : str
+    """
+    from scipy.special import expit
+
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(4.6, 4.2))
+    ax.plot([0, 1], [0, 1], color="0.7", linewidth=1, label="confidence = precision")
+    rows = [s for s in strata if s["precision"] is not None and s["mean_confidence"] is not None]
+    if rows:
+        x = np.array([s["mean_confidence"] for s in rows])
+        y = np.array([s["precision"] for s in rows])
+        err = np.array([[s["precision"] - s["precision_low"], s["precision_high"] - s["precision"]] for s in rows]).T
+        ax.errorbar(x, y, yerr=err, fmt="o", color="black", capsize=3, label="strata (Wilson 95 %)")
+    if logistic is not None:
+        c = np.linspace(0.01, 0.999, 200)
+        z = logistic["beta0"] + logistic["beta1"] * np.log(c / (1 - c))
+        ax.plot(c, expit(z), "--", color="0.35", label="logistic fit")
+    ax.set_xlim(0, 1.0)
+    ax.set_ylim(0, 1.02)
+    ax.set_xlabel("model confidence (mean in stratum)")
+    ax.set_ylabel("verified precision")
+    ax.set_title(f"{label}: confidence against verdicts", fontsize=10)
+    ax.legend(loc="upper left", fontsize=8)
     fig.tight_layout()
     return fig

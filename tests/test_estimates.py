@@ -217,3 +217,16 @@ def test_recall_intervals_over_audit_segments_cover_the_true_recall():
         _, _, low, high = ratio_estimate(found[pick], calls[pick], sampling_fraction=40 / segments)
         hits += low <= true <= high
     assert 0.93 <= hits / runs <= 0.97, hits / runs
+
+
+def test_zero_variance_uses_the_designs_size_and_a_census_is_exact():
+    # All verified detections correct: the estimated variance is 0, so Korn & Graubard's
+    # n* falls back to the design's size; for one stratum of 12 sampled of 1,000 that is
+    # 12 / (1 - 12/1000), and the one-sided Clopper-Pearson bound of x = n is alpha^(1/n).
+    est = stratified_proportion([1000], [12], [12])
+    assert est.effective_sample_size == pytest.approx(12 / (1 - 0.012))
+    assert korn_graubard_interval(est, one_sided=True)[0] == pytest.approx(0.05 ** (1 / est.effective_sample_size))
+    # A stratum verified whole is known exactly (Cochran 1977: the finite-population factor is 0).
+    census = stratified_proportion([12], [12], [12])
+    assert korn_graubard_interval(census) == (1.0, 1.0)
+    assert guaranteed_threshold_index([500, 12], [20, 12], [10, 12], 0.8) == 1
