@@ -125,8 +125,117 @@ def run_demo(
         db, summary["survey_truth"], out / "evaluation", complete_truth=True, tracking_uri=tracking_uri
     )
     summary["seconds"]["evaluation"] = round(time.perf_counter() - t4, 1)
+
+    # Verify a sample of the survey run as a team would (docs/review.md); the reviewer is
+    # simulated from the survey's truth, and its verdicts go through the same import.
+    t5 = time.perf_counter()
+    say(f"demo: drawing a verification sample of run {scored['run_id']} into {out / 'review'}")
+    summary["review"] = _review_step(out, db, summary, seed)
+    summary["seconds"]["review"] = round(time.perf_counter() - t5, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
+
+
+# The demo's verification sample: small, so that rendering stays cheap in tests and CI.
+REVIEW_ITEMS = 60
+REVIEW_BINS = 5
+# The simulated reviewer gives the wrong verdict on this share of items (seeded), as a
+# reminder that verdicts are not truth either.
+REVIEW_ERROR_RATE = 0.03
+SIMULATED_REVIEWER = "simulated-reviewer"
+
+
+def _review_step(out: Path, db: Path, summary: dict[str, Any], seed: int) -> dict[str, Any]:
+    """Draw the sample, answer it from the truth with errors, import the answers, count them."""
+    import csv
+
+    from .errors import InputError
+    from .review import draw_sample, import_verdicts
+    from .store import open_store
+
+    folder = out / "review"
+    # A rerun of the demo replaces its own earlier sample (its verdicts were simulated).
+    try:
+        drawn = draw_sample(
+            db, folder, label=summary["target_label"], n=REVIEW_ITEMS, bins=REVIEW_BINS, seed=seed, replace=True
+        )
+    except InputError as exc:  # a run without a target detection has nothing to verify
+        return {"skipped": str(exc)}
+    answers = _simulated_verdicts(db, drawn["sample_id"], summary, seed)
+    table = folder / "verdicts-simulated.csv"
+    with open(table, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["detection_id", "verdict", "reviewer", "note"])
+        for det, verdict, truth in answers:
+            w.writerow([det, verdict, SIMULATED_REVIEWER, "" if verdict == truth else "simulated error"])
+    imported = import_verdicts(db, table)
+    con = open_store(db, create=False)
+    try:
+        counts = {
+            (r[0], r[1]): r[2]
+            for r in con.execute(
+                "SELECT ri.stratum, v.verdict, COUNT(*) FROM review_items ri JOIN verdicts v "
+                "ON v.detection_id=ri.detection_id AND v.reviewer=? WHERE ri.sample_id=? GROUP BY 1, 2",
+                (SIMULATED_REVIEWER, drawn["sample_id"]),
+            )
+        }
+    finally:
+        con.close()
+    for s in drawn["strata"]:
+        s.update({v: counts.get((s["stratum"], v), 0) for v in ("yes", "no", "unsure")})
+    return {
+        "sample": drawn,
+        "verdicts": str(table),
+        "imported": imported,
+        "error_rate": REVIEW_ERROR_RATE,
+        "errors": sum(1 for _, v, t in answers if v != t),
+    }
+
+
+def _simulated_verdicts(db: Path, sample_id: int, summary: dict[str, Any], seed: int) -> list[tuple[int, str, str]]:
+    """(detection id, verdict given, true verdict) per sampled item.
+
+    True means the detection matches a truth call under the matching rule of
+    docs/evaluation.md, applied to the whole run (matching is one-to-one, so a sampled
+    detection's truth depends on its neighbours). A seeded share REVIEW_ERROR_RATE of
+    the verdicts is flipped.
+    """
+    import numpy as np
+
+    from .deployment import load_deployment
+    from .evaluation import match_detections
+    from .labels import read_label_table
+    from .store import open_store
+
+    label = summary["target_label"]
+    truth = [a for a in read_label_table(summary["survey_truth"], [load_deployment(summary["survey_manifest"])], [])]
+    truth = [a for a in truth if a.label == label]
+    con = open_store(db, create=False)
+    try:
+        run_id = con.execute("SELECT run_id FROM review_samples WHERE sample_id=?", (sample_id,)).fetchone()[0]
+        dets = con.execute(
+            "SELECT d.detection_id, f.name, d.start_s, d.end_s, d.confidence FROM detections d "
+            "JOIN files f ON f.file_id=d.file_id WHERE d.run_id=? AND d.label=? AND d.superseded=0",
+            (run_id, label),
+        ).fetchall()
+        sampled = [r[0] for r in con.execute("SELECT detection_id FROM review_items WHERE sample_id=?", (sample_id,))]
+    finally:
+        con.close()
+    match = match_detections(
+        [r[1] for r in dets],
+        np.array([r[2] for r in dets]),
+        np.array([r[3] for r in dets]),
+        np.array([r[4] for r in dets]),
+        [a.file for a in truth],
+        np.array([a.start_s for a in truth]),
+        np.array([a.end_s for a in truth]),
+    )
+    true = {r[0]: ("yes" if m >= 0 else "no") for r, m in zip(dets, match, strict=True)}
+    rng = np.random.default_rng([seed, 14])
+    sampled.sort()
+    wrong = rng.random(len(sampled)) < REVIEW_ERROR_RATE
+    flip = {"yes": "no", "no": "yes"}
+    return [(d, flip[true[d]] if w else true[d], true[d]) for d, w in zip(sampled, wrong, strict=True)]
 
 
 def format_demo_summary(summary: dict[str, Any]) -> str:
@@ -199,6 +308,8 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         ]
         lines += ["  " + line for line in format_evaluation(ev, summary["target_label"], caution=False).splitlines()]
         lines.append(f"  metrics, tables and figures in {ev['out']}")
+    if "review" in summary:
+        lines += ["", *_review_lines(summary["review"])]
     lines += [
         "",
         "Files",
@@ -211,6 +322,30 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         CAUTION,
     ]
     return "\n".join(lines)
+
+
+def _review_lines(review: dict[str, Any]) -> list[str]:
+    """The verification sample's design and its verdicts per stratum."""
+    if "skipped" in review:
+        return ["Verification sample (docs/review.md)", f"  not drawn: {review['skipped']}"]
+    s = review["sample"]
+    d = s["design"]
+    population = sum(x["population"] for x in s["strata"])
+    lines = [
+        "Verification sample (docs/review.md)",
+        f"  sample {s['sample_id']} of run {s['run_id']}, {s['label']}: {s['items']} of {population} detections "
+        f"in {len(s['strata'])} confidence strata ({d['rule']}, {d['allocation']} allocation, seed {s['seed']})",
+        f"  verdicts of a simulated reviewer, answering from the survey's truth and wrong on "
+        f"{100 * review['error_rate']:g} % of items by design ({review['errors']} here)",
+        f"    {'stratum':>7}  {'confidence':<11}  {'N_h':>5} {'n_h':>4} {'yes':>4} {'no':>4} {'unsure':>6}",
+    ]
+    for x in s["strata"]:
+        lines.append(
+            f"    {x['stratum']:>7}  {x['low']:.3f}-{x['high']:.3f}  {x['population']:>5} {x['sampled']:>4} "
+            f"{x['yes']:>4} {x['no']:>4} {x['unsure']:>6}"
+        )
+    lines.append(f"  images, clips and sample.csv in {s['folder']}; verdicts imported from {review['verdicts']}")
+    return lines
 
 
 def _time_line(seconds: dict) -> str:

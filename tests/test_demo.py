@@ -44,6 +44,21 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     # the default run's gap of 0.45).
     assert model_ap > 0.5
     assert model_ap > baseline_ap + 0.2
+    # The review step: a sample of the target's detections, answered by a simulated
+    # reviewer and imported; every sampled item has exactly one simulated verdict.
+    assert "Verification sample" in page and "simulated reviewer" in page
+    import sqlite3
+
+    con = sqlite3.connect(out / "detections.db")
+    items = con.execute("SELECT COUNT(*) FROM review_items").fetchone()[0]
+    answered = con.execute(
+        "SELECT COUNT(*) FROM verdicts v JOIN review_items ri USING (detection_id) "
+        "WHERE v.reviewer='simulated-reviewer'"
+    ).fetchone()[0]
+    con.close()
+    assert items > 0 and answered == items
+    sample = list(csv.DictReader(open(out / "review" / "sample.csv")))
+    assert len(sample) == items and all((out / "review" / r["image"]).exists() for r in sample)
 
 
 def scenario_run_id(out):
