@@ -1,0 +1,179 @@
+"""`callsieve review export-labels`: verified detections as a partial label table, for retraining.
+
+Only the verified stretches of a file are known: the table marks every row ``partial``, so
+that training learns from these stretches and never takes the rest of those files for
+background (docs/formats.md §3, "Partial tables").
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import re
+import sqlite3
+import sys
+from pathlib import Path
+from typing import Any
+
+from .errors import InputError
+from .estimate import consensus
+from .labels import BACKGROUND
+from .outputs import check_output
+from .store import latest_run_id, open_store
+
+__all__ = ["VERIFIED_LABEL_COLUMNS", "export_verified_labels", "verified_label_rows", "add_export_labels_verb"]
+
+VERIFIED_LABEL_COLUMNS = [
+    "deployment",
+    "file",
+    "start_s",
+    "end_s",
+    "label",
+    "low_hz",
+    "high_hz",
+    "partial",
+    "detection_id",
+    "run_id",
+    "verdict",
+    "reviewers",
+]
+_TYPE = re.compile(r"^\[type: ([^\]]+)\]")
+
+
+def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict[str, Any]], dict[str, int]]:
+    """Rows of the partial label table for a run's verified detections, and what was left out.
+
+    Each verified detection gives one row: ``yes`` its class, ``no`` background (a hard
+    negative), "another call type" that type, ``unsure`` nothing. With several reviewers the
+    majority decides (a tie is unsure), and a type named by the majority of the reviewers
+    who named one.
+    """
+    votes: dict[int, list[tuple[str, str | None, str]]] = {}
+    for r in con.execute(
+        "SELECT v.detection_id, v.verdict, v.note, v.reviewer FROM verdicts v JOIN detections d "
+        "USING (detection_id) WHERE d.run_id=? ORDER BY v.detection_id, v.reviewer",
+        (run_id,),
+    ):
+        m = _TYPE.match(r["note"] or "")
+        votes.setdefault(r["detection_id"], []).append((r["verdict"], m.group(1).strip() if m else None, r["reviewer"]))
+    left_out = {"unsure": 0, "superseded": 0}
+    rows = []
+    for det_id, vs in sorted(votes.items()):
+        d = con.execute(
+            "SELECT d.*, f.name AS file, dep.name AS deployment FROM detections d JOIN files f USING (file_id) "
+            "JOIN deployments dep ON dep.deployment_id=f.deployment_id WHERE d.detection_id=?",
+            (det_id,),
+        ).fetchone()
+        if d["superseded"]:
+            # Its file changed and was scored again: the times may no longer hold.
+            left_out["superseded"] += 1
+            continue
+        types = [t for _, t, _ in vs if t and t != d["label"]]
+        plain = [("no" if (t and t != d["label"]) else v) for v, t, _ in vs]
+        verdict = consensus(plain)
+        if types and plain.count("no") * 2 > len(plain) and len(types) * 2 > plain.count("no"):
+            label = max(set(types), key=types.count)
+        elif verdict == "yes":
+            label = d["label"]
+        elif verdict == "no":
+            label = BACKGROUND
+        else:
+            left_out["unsure"] += 1
+            continue
+        rows.append(
+            {
+                "deployment": d["deployment"],
+                "file": d["file"],
+                "start_s": round(d["start_s"], 4),
+                "end_s": round(d["end_s"], 4),
+                "label": label,
+                "low_hz": round(d["low_hz"], 2),
+                "high_hz": round(d["high_hz"], 2),
+                "partial": 1,
+                "detection_id": det_id,
+                "run_id": run_id,
+                "verdict": verdict,
+                "reviewers": ";".join(sorted({rv for _, _, rv in vs})),
+            }
+        )
+    return rows, left_out
+
+
+def _earlier_table(path: Path) -> bool:
+    try:
+        with open(path, encoding="utf-8", newline="") as fh:
+            return next(csv.reader(fh), None) == VERIFIED_LABEL_COLUMNS
+    except (OSError, UnicodeDecodeError):
+        return False
+
+
+def export_verified_labels(
+    db: str | Path, out: str | Path, run_id: int | None = None, force: bool = False
+) -> dict[str, Any]:
+    """Write a run's verified detections as a partial label table (CSV).
+
+    Returns
+    -------
+    dict
+        ``run_id``, ``rows``, ``by_label`` (rows per label), ``left_out`` (unsure,
+        superseded), ``out``.
+    """
+    out = check_output(
+        out,
+        option="--out",
+        suffixes=(".csv",),
+        inputs=(db,),
+        ours=_earlier_table,
+        what="a verified label table",
+        force=force,
+    )
+    con = open_store(db, create=False)
+    try:
+        run_id = latest_run_id(con, run_id)
+        rows, left_out = verified_label_rows(con, run_id)
+    finally:
+        con.close()
+    if not rows:
+        raise InputError(
+            f"run {run_id} has no verified detection to export (yes, no or another type); "
+            "review a sample first ('callsieve review serve' or 'review import')"
+        )
+    tmp = out.with_name(out.name + ".partial")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=VERIFIED_LABEL_COLUMNS)
+        w.writeheader()
+        w.writerows(rows)
+    tmp.replace(out)
+    by_label: dict[str, int] = {}
+    for r in rows:
+        by_label[r["label"]] = by_label.get(r["label"], 0) + 1
+    return {"run_id": run_id, "rows": len(rows), "by_label": by_label, "left_out": left_out, "out": str(out)}
+
+
+def _cmd_export_labels(args: argparse.Namespace) -> int:
+    r = export_verified_labels(args.db, args.out, run_id=args.run, force=args.force)
+    labels = ", ".join(f"{k} {v}" for k, v in sorted(r["by_label"].items()))
+    print(
+        f"run {r['run_id']}: {r['rows']} verified detections written to {r['out']} as a partial label table "
+        f"({labels}); left out: {r['left_out']['unsure']} unsure or tied, "
+        f"{r['left_out']['superseded']} on superseded detections"
+    )
+    if not args.quiet:
+        print(
+            "callsieve: retrain with the original tables plus this one: 'callsieve train ... --labels "
+            f"{r['out']}'; only its rows' stretches are known, the rest of those files is not background",
+            file=sys.stderr,
+        )
+    return 0
+
+
+def add_export_labels_verb(sub: argparse._SubParsersAction, common: argparse.ArgumentParser) -> None:
+    """Add ``review export-labels`` to the review sub-verbs."""
+    p = sub.add_parser(
+        "export-labels", parents=[common], help="write verified detections as a partial label table for retraining"
+    )
+    p.add_argument("db", metavar="DB", help="detection store with verdicts")
+    p.add_argument("--out", required=True, metavar="CSV", help="label table to write (.csv)")
+    p.add_argument("--run", type=int, metavar="ID", help="scoring run (default: the latest)")
+    p.add_argument("--force", action="store_true", help="replace an existing file that is not an earlier export")
+    p.set_defaults(func=_cmd_export_labels)
