@@ -134,6 +134,51 @@ def export(db: Path, out: Path) -> dict:
     return {"rows": int(rows), "seconds": float(seconds), "peak_rss_mb": float(rss), "bytes": out.stat().st_size}
 
 
+def estimate(db: Path, file_ids: list[int]) -> float:
+    """A stratified sample of 120 with verdicts written into the store, then `estimate` timed."""
+    from callsieve.classifier.estimate import estimate_run
+    from callsieve.classifier.store import Transaction, now_utc, open_store
+
+    con = open_store(db)
+    rng = np.random.default_rng(3)
+    edges = [0.1, 0.4, 0.6, 0.8, 0.9, 1.0]
+    with Transaction(con):
+        sid = con.execute(
+            "INSERT INTO review_samples (run_id, label, design, seed, blind, folder, created_utc) "
+            "VALUES (1, 'call', '{}', 0, 0, '.', ?)",
+            (now_utc(),),
+        ).lastrowid
+        for h in range(5):
+            lo, hi = edges[h], edges[h + 1]
+            population = con.execute(
+                "SELECT COUNT(*) FROM detections WHERE confidence>=? AND confidence<?", (lo, hi)
+            ).fetchone()[0]
+            ids = [
+                r[0]
+                for r in con.execute(
+                    "SELECT detection_id FROM detections WHERE confidence>=? AND confidence<? "
+                    "ORDER BY random() LIMIT 24",
+                    (lo, hi),
+                )
+            ]
+            con.execute("INSERT INTO review_strata VALUES (?, ?, ?, ?, ?, ?)", (sid, h + 1, lo, hi, population, 24))
+            for k, d in enumerate(ids):
+                con.execute(
+                    "INSERT INTO review_items (sample_id, detection_id, stratum, inclusion_probability, draw_order) "
+                    "VALUES (?, ?, ?, ?, ?)",
+                    (sid, d, h + 1, 24 / population, 24 * h + k),
+                )
+                verdict = "yes" if rng.random() < 0.2 + 0.15 * h else "no"
+                con.execute(
+                    "INSERT INTO verdicts (detection_id, reviewer, verdict, recorded_utc) VALUES (?, 'bench', ?, ?)",
+                    (d, verdict, now_utc()),
+                )
+    con.close()
+    t = time.perf_counter()
+    estimate_run(db)
+    return time.perf_counter() - t
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--files", type=int, default=35_000)
@@ -166,6 +211,9 @@ def main() -> None:
             )
             figures[f"export_{suffix}"] = e
             (folder / f"detections.{suffix}").unlink()
+        e = estimate(db, p["ids"])
+        print(f"estimate over {args.detections:,} detections (a sample of 120 judged): {e:.1f} s", flush=True)
+        figures["estimate_s"] = e
         figures["bench_peak_rss_mb"] = peak_rss_mb()
         if args.json:
             args.json.write_text(json.dumps(figures, indent=2))

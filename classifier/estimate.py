@@ -11,7 +11,7 @@ import csv
 import json
 import re
 import sqlite3
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -238,39 +238,47 @@ def _presence(
     """Hours and days holding at least one true detection at or above stratum ``first``.
 
     Each detection counts with its stratum's verified precision (a verified one with its
-    own verdict), detections taken as independent; the interval comes from drawing each
-    stratum's precision from its Jeffreys posterior, Beta(k + ½, n − k + ½).
+    own verdict), detections taken as independent. A stratum's precision is drawn from its
+    Jeffreys posterior Beta(k + ½, n − k + ½) for the interval, and the point is that
+    posterior's mean (½ for a stratum without verdicts).
     """
     from .review import stratum_index
 
-    rows = con.execute(
-        "SELECT d.detection_id, d.confidence, d.start_s, f.start_utc FROM detections d JOIN files f USING (file_id) "
-        "WHERE d.run_id=? AND d.label=? AND d.superseded=0 AND d.confidence>=?",
+    epoch = {
+        fid: datetime.fromisoformat(text.replace("Z", "+00:00")).astimezone(UTC).timestamp()
+        for fid, text in con.execute("SELECT file_id, start_utc FROM files WHERE start_utc<>''")
+    }
+    cur = con.execute(
+        "SELECT detection_id, confidence, start_s, file_id FROM detections "
+        "WHERE run_id=? AND label=? AND superseded=0 AND confidence>=?",
         (run_id, label, float(edges[first])),
-    ).fetchall()
-    if not rows:
+    )
+    ids, conf, t = [], [], []
+    while chunk := cur.fetchmany(100_000):  # a year's run may hold millions
+        a = np.array(chunk, dtype=float)
+        ids.append(a[:, 0].astype(np.int64))
+        conf.append(a[:, 1])
+        t.append(a[:, 2] + np.array([epoch[int(f)] for f in a[:, 3]]))
+    if not ids:
         return {"hours_detected": 0, "days_detected": 0, "hours_expected": 0.0, "days_expected": 0.0}
-    starts: dict[str, datetime] = {}
-    hour_of, day_of, strata, fixed = [], [], [], []
-    for det_id, conf, s0, fstart in rows:
-        t0 = starts.get(fstart)
-        if t0 is None:
-            t0 = starts[fstart] = datetime.fromisoformat(fstart.replace("Z", "+00:00")).astimezone(UTC)
-        t = t0 + timedelta(seconds=s0)
-        hour_of.append(t.strftime("%Y-%m-%dT%H"))
-        day_of.append(t.strftime("%Y-%m-%d"))
-        strata.append(conf)
-        v = items.get(det_id, {}).get("verdict")
-        fixed.append(1.0 if v == "yes" else 0.0 if v == "no" else np.nan)
-    h_idx = stratum_index(np.array(strata), edges)
-    fixed_p = np.array(fixed)
+    ids, t = np.concatenate(ids), np.concatenate(t)
+    h_idx = stratum_index(np.concatenate(conf), edges)
+    verdict = {d: it["verdict"] for d, it in items.items() if it["verdict"] in ("yes", "no")}
+    fixed_p = (
+        np.array([{"yes": 1.0, "no": 0.0}.get(verdict.get(int(d)), np.nan) for d in ids])
+        if verdict
+        else (np.full(ids.size, np.nan))
+    )
+    hour_of = np.floor(t / 3600.0).astype(np.int64)
+    day_of = np.floor(t / 86400.0).astype(np.int64)
     rng = np.random.default_rng(seed)
     n_strata = edges.size - 1
     draws = rng.beta(yes[:, None] + 0.5, no[:, None] + 0.5, size=(n_strata, _BOOTSTRAP))
-    point = np.where(yes + no > 0, yes / np.maximum(yes + no, 1), np.nan)
+    # The posterior mean, so the point and its interval come from one distribution.
+    point = (yes + 0.5) / (yes + no + 1.0)
     out: dict[str, Any] = {}
     for unit, keys in (("hours", hour_of), ("days", day_of)):
-        names, inverse = np.unique(np.array(keys), return_inverse=True)
+        names, inverse = np.unique(keys, return_inverse=True)
         # log(1 − p) summed per unit: known verdicts enter as 0 or certain; others by stratum.
         known = ~np.isnan(fixed_p)
         certain = np.bincount(inverse[known & (fixed_p == 1.0)], minlength=names.size) > 0
@@ -278,14 +286,19 @@ def _presence(
         np.add.at(counts, (inverse[~known], h_idx[~known]), 1.0)
         with np.errstate(divide="ignore"):
             log_q = np.log1p(-np.clip(draws, 0, 1 - 1e-12))
-            log_q_point = np.log1p(-np.clip(np.nan_to_num(point, nan=0.0), 0, 1 - 1e-12))
+            log_q_point = np.log1p(-np.clip(point, 0, 1 - 1e-12))
         p_unit = np.where(certain, 1.0, 1.0 - np.exp(counts @ log_q_point))
         reps = np.where(certain[:, None], 1.0, 1.0 - np.exp(counts @ log_q)).sum(axis=0)
         out[f"{unit}_detected"] = int(names.size)
         out[f"{unit}_expected"] = round(float(p_unit.sum()), 3)
         out[f"{unit}_expected_low"] = round(float(np.percentile(reps, 2.5)), 3)
         out[f"{unit}_expected_high"] = round(float(np.percentile(reps, 97.5)), 3)
-        out[f"{unit}_probability"] = {str(n): round(float(p), 4) for n, p in zip(names, p_unit, strict=True)}
+        fmt = "%Y-%m-%dT%H" if unit == "hours" else "%Y-%m-%d"
+        step = 3600 if unit == "hours" else 86400
+        out[f"{unit}_probability"] = {
+            datetime.fromtimestamp(int(n) * step, UTC).strftime(fmt): round(float(p), 4)
+            for n, p in zip(names, p_unit, strict=True)
+        }
     return out
 
 
