@@ -14,6 +14,11 @@ Schema (``SCHEMA_VERSION`` 1):
 - ``detections``: candidate calls, the detection table of docs/formats.md; ``superseded`` marks detections of
   a file that changed and was scored again, kept because someone verified them.
 - ``verdicts``: reviewers' verdicts on detections (``yes``, ``no``, ``unsure``).
+- ``soundscape``: per run and file, the calibrated long-term spectrum collected while
+  scoring: consecutive bins of ``bin_s`` seconds from ``start_utc`` (the file's start),
+  ``seconds`` of audio in each (float32), fractional-octave ``band_edges_hz`` (float32,
+  n_bands + 1) and the mean PSD per bin and band, dB re 1 µPa²/Hz (float16, row-major
+  n_bins × n_bands; NaN where a band holds no frequency bin). All little-endian.
 - ``claims``: files a scoring process is working on now (owner, host, pid, last sign
   of life), so that two processes on one store share the work instead of doing it twice.
 - ``review_samples``: a verification sample's design (run, label, strata rule,
@@ -116,6 +121,16 @@ CREATE TABLE IF NOT EXISTS verdicts (
     note TEXT,
     recorded_utc TEXT NOT NULL,
     UNIQUE (detection_id, reviewer)
+);
+CREATE TABLE IF NOT EXISTS soundscape (
+    run_id INTEGER NOT NULL REFERENCES runs(run_id),
+    file_id INTEGER NOT NULL REFERENCES files(file_id),
+    start_utc TEXT NOT NULL,
+    bin_s REAL NOT NULL,
+    seconds BLOB NOT NULL,
+    band_edges_hz BLOB NOT NULL,
+    psd_db BLOB NOT NULL,
+    PRIMARY KEY (run_id, file_id)
 );
 CREATE TABLE IF NOT EXISTS claims (
     run_id INTEGER NOT NULL REFERENCES runs(run_id),
