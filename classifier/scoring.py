@@ -28,6 +28,7 @@ import numpy as np
 from callsieve.features.calibration import RecordingChain, pressure_from_samples
 from callsieve.features.levels import band_spl_db
 from callsieve.features.pipeline import CLIP_THRESHOLD, describe_stream
+from callsieve.features.soundscape import BIN_S, MinuteSpectra
 from callsieve.features.streaming import AudioReader, AudioReadError, SegmentReader
 
 from .calibrate import utc_iso
@@ -69,6 +70,8 @@ class FileResult:
     rows: list[tuple] = field(default_factory=list)
     seconds: float = 0.0
     nonfinite: int = 0  # NaN or infinite samples of this file, scored as zeros
+    # The long-term spectrum: seconds per 60-s bin, band edges (Hz), mean PSD (µPa²/Hz).
+    soundscape: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
 
 
 # Detections whose levels share one read of the audio: spans of at most this much recorded
@@ -242,14 +245,15 @@ def _score_file(
         k0 = int(np.floor(offset / fs / hop)) - _CONTEXT_WINDOWS
         k1 = int(np.ceil((offset + frames) / fs / hop)) + _CONTEXT_WINDOWS
         frequency_hz = None
-        for table in describe_stream(reader, chain, settings, block_s, (k0, k1)):
+        spectra = MinuteSpectra(fs, chain, offset, frames)
+        for table in describe_stream(reader, chain, settings, block_s, (k0, k1), spectra.add):
             values.append(table.values)
             segment.append(table.segment_s)
             noise_psd.append(table.noise_psd)
             starts.append(table.start_s)
             frequency_hz = table.frequency_hz
         if not values:
-            return FileResult(name, "done", None, 0, [], time.perf_counter() - t0)
+            return FileResult(name, "done", None, 0, [], time.perf_counter() - t0, 0, _soundscape(spectra))
         # One prediction per file: a boosted model's cost is mostly per call and per tree.
         v = np.concatenate(values)
         proba = _predict(model, v, background if gate else None, i_act, i_snr)
@@ -283,7 +287,14 @@ def _score_file(
                 )
             )
         nonfinite = reader.nonfinite_in(offset)
-    return FileResult(name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0, nonfinite)
+    return FileResult(
+        name, "done", None, int(owned.sum()), rows, time.perf_counter() - t0, nonfinite, _soundscape(spectra)
+    )
+
+
+def _soundscape(spectra: MinuteSpectra) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    seconds, psd = spectra.result()
+    return seconds, spectra.edges, psd
 
 
 # Rows per call of the model: bounds the memory of one prediction on a long file.
@@ -656,6 +667,9 @@ def _store_result(
         [r for r in result.rows if r[0] >= rec.head_overlap_s],
         before_commit=_die(FAULT_INSIDE_FILE, n) if n == die_inside else None,
         nonfinite_samples=result.nonfinite,
+        soundscape=result.soundscape,
+        file_start_utc=utc_iso(rec.start_utc),
+        bin_s=BIN_S,
     )
     if result.nonfinite:
         nonfinite.append({"file": rec.name, "samples": result.nonfinite})

@@ -41,6 +41,8 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from .errors import InputError
 
 __all__ = ["SCHEMA_VERSION", "open_store", "now_utc"]
@@ -333,12 +335,17 @@ def replace_file_result(
     rows: Iterable[tuple],
     before_commit: Callable[[], None] | None = None,
     nonfinite_samples: int = 0,
+    soundscape: tuple | None = None,
+    file_start_utc: str | None = None,
+    bin_s: float = 60.0,
 ) -> int:
     """Store one file's outcome in one transaction; return the number of detections stored.
 
     Earlier detections of this run and file go, except those with verdicts, which are
     kept and marked superseded so that no reviewer's work is lost. ``before_commit``
     (a test hook) is called inside the transaction after every write, just before COMMIT.
+    ``soundscape`` (seconds per bin, band edges in Hz, mean PSD in µPa²/Hz per bin and
+    band) is stored with it, from ``file_start_utc``, in bins of ``bin_s`` seconds.
     """
     rows = list(rows)
     with Transaction(con):
@@ -365,6 +372,24 @@ def replace_file_result(
             "scored_utc=excluded.scored_utc, nonfinite_samples=excluded.nonfinite_samples",
             (run_id, file_id, status, error, size_bytes, mtime_ns, windows, len(rows), now_utc(), nonfinite_samples),
         )
+        con.execute("DELETE FROM soundscape WHERE run_id=? AND file_id=?", (run_id, file_id))
+        if soundscape is not None and len(soundscape[0]) and file_start_utc:
+            seconds, edges, psd = soundscape
+            with np.errstate(divide="ignore"):
+                psd_db = 10.0 * np.log10(np.asarray(psd, float))
+            con.execute(
+                "INSERT INTO soundscape (run_id, file_id, start_utc, bin_s, seconds, band_edges_hz, psd_db) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                (
+                    run_id,
+                    file_id,
+                    file_start_utc,
+                    bin_s,
+                    np.asarray(seconds, "<f4").tobytes(),
+                    np.asarray(edges, "<f4").tobytes(),
+                    np.ascontiguousarray(psd_db, "<f2").tobytes(),
+                ),
+            )
         if before_commit is not None:
             before_commit()
     return len(rows)

@@ -7,7 +7,7 @@ size: every block reads the context its frames, noise floor and filters need.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -92,16 +92,19 @@ def describe_stream(
     settings: DescriptorSettings,
     block_s: float = 600.0,
     window_range: tuple[int, int] | None = None,
+    on_samples: Callable[[int, np.ndarray], None] | None = None,
 ) -> Iterator[WindowTable]:
     """Describe the windows [k0, k1) of an open stream (a file, or consecutive files).
 
     Window k starts at the frame ``k * frames_per_window_hop`` counted from the stream's
     sample 0, so every worker that reads a stretch of a continuous recording puts its
     windows on the same grid. Times in the tables are seconds from sample 0.
+    ``on_samples(start, samples)`` is given every stretch of samples read, as read (in
+    order, overlapping), so other measures need no second read of the audio.
     """
     fs = reader.sample_rate_hz
     settings.grid.check_sample_rate(fs)
-    yield from _describe(reader, fs, chain, settings, block_s, window_range)
+    yield from _describe(reader, fs, chain, settings, block_s, window_range, on_samples)
 
 
 def decimation_factor(sample_rate_hz: int, high_hz: float) -> int:
@@ -130,6 +133,7 @@ def _describe(
     settings: DescriptorSettings,
     block_s: float,
     window_range: tuple[int, int] | None = None,
+    on_samples: Callable[[int, np.ndarray], None] | None = None,
 ) -> Iterator[WindowTable]:
     grid = settings.grid
     q = decimation_factor(fs, settings.high_hz)
@@ -177,6 +181,8 @@ def _describe(
         raw0 = max(q * s0 - pad, q * a0)
         raw1 = min(q * s1 + pad, reader.stop)
         raw = reader.read(raw0, raw1)
+        if on_samples is not None:
+            on_samples(raw0, raw)
         if q > 1:
             analysed = signal.resample_poly(raw, 1, q).astype(np.float32)
             analysed = analysed[s0 - raw0 // q : s1 - raw0 // q]
