@@ -244,11 +244,14 @@ def _presence(
     """
     from .review import stratum_index
 
-    epoch = {
-        fid: datetime.fromisoformat(text.replace("Z", "+00:00")).astimezone(UTC).timestamp()
-        for fid, text in con.execute("SELECT file_id, start_utc FROM files WHERE start_utc<>''")
-    }
-    cur = con.execute(
+    files = con.execute("SELECT file_id, start_utc FROM files WHERE start_utc<>'' ORDER BY file_id").fetchall()
+    file_key = np.array([f[0] for f in files], dtype=np.int64)
+    file_epoch = np.array(
+        [datetime.fromisoformat(f[1].replace("Z", "+00:00")).astimezone(UTC).timestamp() for f in files]
+    )
+    cur = con.cursor()
+    cur.row_factory = None  # plain tuples: a year's run may hold millions of rows
+    cur.execute(
         "SELECT detection_id, confidence, start_s, file_id FROM detections "
         "WHERE run_id=? AND label=? AND superseded=0 AND confidence>=?",
         (run_id, label, float(edges[first])),
@@ -258,17 +261,20 @@ def _presence(
         a = np.array(chunk, dtype=float)
         ids.append(a[:, 0].astype(np.int64))
         conf.append(a[:, 1])
-        t.append(a[:, 2] + np.array([epoch[int(f)] for f in a[:, 3]]))
+        t.append(a[:, 2] + file_epoch[np.searchsorted(file_key, a[:, 3].astype(np.int64))])
     if not ids:
         return {"hours_detected": 0, "days_detected": 0, "hours_expected": 0.0, "days_expected": 0.0}
     ids, t = np.concatenate(ids), np.concatenate(t)
     h_idx = stratum_index(np.concatenate(conf), edges)
-    verdict = {d: it["verdict"] for d, it in items.items() if it["verdict"] in ("yes", "no")}
-    fixed_p = (
-        np.array([{"yes": 1.0, "no": 0.0}.get(verdict.get(int(d)), np.nan) for d in ids])
-        if verdict
-        else (np.full(ids.size, np.nan))
-    )
+    # Verified detections enter with their own verdict (1 or 0), the rest by stratum (NaN here).
+    fixed_p = np.full(ids.size, np.nan)
+    judged = [(d, it["verdict"] == "yes") for d, it in items.items() if it["verdict"] in ("yes", "no")]
+    if judged:
+        keys = np.array([j[0] for j in judged], dtype=np.int64)
+        yes_of = np.array([j[1] for j in judged], dtype=float)
+        order = np.argsort(keys)
+        where = np.isin(ids, keys)
+        fixed_p[where] = yes_of[order][np.searchsorted(keys[order], ids[where])]
     hour_of = np.floor(t / 3600.0).astype(np.int64)
     day_of = np.floor(t / 86400.0).astype(np.int64)
     rng = np.random.default_rng(seed)
