@@ -368,6 +368,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_estimate)
 
+    from .report import add_report_verb
+
+    add_report_verb(verbs, common)
     from .review_cli import add_review_verbs
 
     add_review_verbs(verbs, common)
