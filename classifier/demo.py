@@ -132,8 +132,77 @@ def run_demo(
     say(f"demo: drawing a verification sample of run {scored['run_id']} into {out / 'review'}")
     summary["review"] = _review_step(out, db, summary, seed)
     summary["seconds"]["review"] = round(time.perf_counter() - t5, 1)
+
+    # What the verified sample says of the whole run, beside what the truth says.
+    if "sample" in summary["review"]:
+        t6 = time.perf_counter()
+        say(f"demo: estimating precision of run {scored['run_id']} from the verified sample")
+        summary["estimate"] = _estimate_step(db, scored["run_id"], summary)
+        summary["seconds"]["estimate"] = round(time.perf_counter() - t6, 1)
+
+    # The monitoring report: presence per hour and day against effort, the soundscape.
+    t7 = time.perf_counter()
+    from .report import build_report
+
+    say(f"demo: writing the monitoring report of run {scored['run_id']} into {out / 'report'}")
+    summary["report"] = build_report(db, out / "report", run_id=scored["run_id"]) | {"out": str(out / "report")}
+    summary["seconds"]["report"] = round(time.perf_counter() - t7, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
+
+
+def _estimate_step(db: Path, run_id: int, summary: dict[str, Any]) -> dict[str, Any]:
+    """`estimate` on the verified sample, with the true precision above each threshold."""
+    import numpy as np
+
+    from .estimate import estimate_run
+
+    est = estimate_run(db, run_id=run_id, label=summary["target_label"], target_precision=0.9)
+    truth = _run_truth(db, run_id, summary)
+    conf = np.array(list(truth["confidence"].values()))
+    correct = np.array([truth["correct"][d] for d in truth["confidence"]])
+    for t in est["thresholds"]:
+        above = conf >= t["threshold"]
+        t["true_precision"] = round(float(correct[above].mean()), 4) if above.any() else None
+        t["true_count"] = int(correct[above].sum())
+    return est
+
+
+def _run_truth(db: Path, run_id: int, summary: dict[str, Any]) -> dict[str, dict[int, Any]]:
+    """Per detection of the target in the run: its confidence and whether it is a true call
+    (the matching rule of docs/evaluation.md over the whole run)."""
+    import numpy as np
+
+    from .deployment import load_deployment
+    from .evaluation import match_detections
+    from .labels import read_label_table
+    from .store import open_store
+
+    label = summary["target_label"]
+    truth = read_label_table(summary["survey_truth"], [load_deployment(summary["survey_manifest"])], [])
+    truth = [a for a in truth if a.label == label]
+    con = open_store(db, create=False)
+    try:
+        dets = con.execute(
+            "SELECT d.detection_id, f.name, d.start_s, d.end_s, d.confidence FROM detections d "
+            "JOIN files f ON f.file_id=d.file_id WHERE d.run_id=? AND d.label=? AND d.superseded=0",
+            (run_id, label),
+        ).fetchall()
+    finally:
+        con.close()
+    match = match_detections(
+        [r[1] for r in dets],
+        np.array([r[2] for r in dets]),
+        np.array([r[3] for r in dets]),
+        np.array([r[4] for r in dets]),
+        [a.file for a in truth],
+        np.array([a.start_s for a in truth]),
+        np.array([a.end_s for a in truth]),
+    )
+    return {
+        "confidence": {r[0]: r[4] for r in dets},
+        "correct": {r[0]: bool(m >= 0) for r, m in zip(dets, match, strict=True)},
+    }
 
 
 # The demo's verification sample: small, so that rendering stays cheap in tests and CI.
@@ -202,35 +271,15 @@ def _simulated_verdicts(db: Path, sample_id: int, summary: dict[str, Any], seed:
     """
     import numpy as np
 
-    from .deployment import load_deployment
-    from .evaluation import match_detections
-    from .labels import read_label_table
     from .store import open_store
 
-    label = summary["target_label"]
-    truth = [a for a in read_label_table(summary["survey_truth"], [load_deployment(summary["survey_manifest"])], [])]
-    truth = [a for a in truth if a.label == label]
     con = open_store(db, create=False)
     try:
         run_id = con.execute("SELECT run_id FROM review_samples WHERE sample_id=?", (sample_id,)).fetchone()[0]
-        dets = con.execute(
-            "SELECT d.detection_id, f.name, d.start_s, d.end_s, d.confidence FROM detections d "
-            "JOIN files f ON f.file_id=d.file_id WHERE d.run_id=? AND d.label=? AND d.superseded=0",
-            (run_id, label),
-        ).fetchall()
         sampled = [r[0] for r in con.execute("SELECT detection_id FROM review_items WHERE sample_id=?", (sample_id,))]
     finally:
         con.close()
-    match = match_detections(
-        [r[1] for r in dets],
-        np.array([r[2] for r in dets]),
-        np.array([r[3] for r in dets]),
-        np.array([r[4] for r in dets]),
-        [a.file for a in truth],
-        np.array([a.start_s for a in truth]),
-        np.array([a.end_s for a in truth]),
-    )
-    true = {r[0]: ("yes" if m >= 0 else "no") for r, m in zip(dets, match, strict=True)}
+    true = {d: ("yes" if c else "no") for d, c in _run_truth(db, run_id, summary)["correct"].items()}
     rng = np.random.default_rng([seed, 14])
     sampled.sort()
     wrong = rng.random(len(sampled)) < REVIEW_ERROR_RATE
@@ -310,6 +359,15 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         lines.append(f"  metrics, tables and figures in {ev['out']}")
     if "review" in summary:
         lines += ["", *_review_lines(summary["review"])]
+    if "estimate" in summary:
+        lines += ["", *_estimate_lines(summary["estimate"])]
+    if "report" in summary:
+        from .report import format_report
+
+        lines += ["", "Monitoring report (docs/report.md)"]
+        lines += [
+            "  " + line for line in format_report(summary["report"], Path(summary["report"]["out"])).splitlines()[:-1]
+        ]
     lines += [
         "",
         "Files",
@@ -345,6 +403,30 @@ def _review_lines(review: dict[str, Any]) -> list[str]:
             f"{x['yes']:>4} {x['no']:>4} {x['unsure']:>6}"
         )
     lines.append(f"  images, clips and sample.csv in {s['folder']}; verdicts imported from {review['verdicts']}")
+    return lines
+
+
+def _estimate_lines(est: dict[str, Any]) -> list[str]:
+    """The estimate from the verified sample beside the truth (docs/estimates.md)."""
+    lines = [
+        "Estimates from the verified sample (docs/estimates.md), beside the survey's truth",
+        f"  {'threshold':>10}  {'detections':>10}  {'precision estimated (95 %)':<28}{'true':>6}"
+        f"  {'true detections est. (95 %)':<28}{'true':>6}",
+    ]
+    for t in est["thresholds"]:
+        lines.append(
+            f"  {t['threshold']:>10.5f}  {t['detections']:>10}  {t['precision']:.3f} ({t['precision_low']:.3f}-"
+            f"{t['precision_high']:.3f}){'':<7}{t['true_precision']:>6.3f}  {t['expected_true']:>6.0f} "
+            f"({t['expected_true_low']:.0f}-{t['expected_true_high']:.0f}){'':<12}{t['true_count']:>6}"
+        )
+    tg = est["target"]
+    g = tg["threshold_guaranteed"]
+    true_at_g = next((t["true_precision"] for t in est["thresholds"] if t["threshold"] == g), None)
+    lines.append(
+        f"  target precision {tg['precision']:g}: threshold {tg['threshold_point']} by point estimate, "
+        f"{g} with a 95 % guarantee" + (f" (true precision there {true_at_g:.3f})" if true_at_g is not None else "")
+    )
+    lines.append(f"  {'DRIFT: ' if est['drift']['flag'] else ''}{est['drift']['message']}")
     return lines
 
 

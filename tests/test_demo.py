@@ -59,6 +59,11 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     assert items > 0 and answered == items
     sample = list(csv.DictReader(open(out / "review" / "sample.csv")))
     assert len(sample) == items and all((out / "review" / r["image"]).exists() for r in sample)
+    # The estimate from those verdicts is printed beside the truth, and the report is written.
+    assert "Estimates from the verified sample" in page and "Monitoring report" in page
+    report = json.loads((out / "report" / "report.json").read_text())
+    assert report["run_id"] == 1 and (out / "report" / "report.html").is_file()
+    assert (out / "report" / "soundscape.npz").is_file()
 
 
 def scenario_run_id(out):
