@@ -406,6 +406,10 @@ def _review_lines(review: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _maybe(threshold: float | None) -> str:
+    return "none" if threshold is None else f"{threshold:.5f}"
+
+
 def _estimate_lines(est: dict[str, Any]) -> list[str]:
     """The estimate from the verified sample beside the truth (docs/estimates.md)."""
     lines = [
@@ -423,8 +427,9 @@ def _estimate_lines(est: dict[str, Any]) -> list[str]:
     g = tg["threshold_guaranteed"]
     true_at_g = next((t["true_precision"] for t in est["thresholds"] if t["threshold"] == g), None)
     lines.append(
-        f"  target precision {tg['precision']:g}: threshold {tg['threshold_point']} by point estimate, "
-        f"{g} with a 95 % guarantee" + (f" (true precision there {true_at_g:.3f})" if true_at_g is not None else "")
+        f"  target precision {tg['precision']:g}: threshold {_maybe(tg['threshold_point'])} by point estimate, "
+        f"{_maybe(g)} with a 95 % guarantee"
+        + (f" (true precision there {true_at_g:.3f})" if true_at_g is not None else "")
     )
     lines.append(f"  {'DRIFT: ' if est['drift']['flag'] else ''}{est['drift']['message']}")
     return lines
