@@ -9,7 +9,8 @@ from typing import Any
 import numpy as np
 from callsieve.features.levels import fractional_octave_bands
 
-from .deployment import Deployment, load_deployment
+from .deployment import Deployment, load_deployment, shown
+from .errors import InputError
 
 __all__ = ["calibration_summary", "format_calibration_summary", "utc_iso"]
 
@@ -40,11 +41,26 @@ def calibration_summary(deployment: Deployment | str | Path) -> dict[str, Any]:
         ``deployment``, ``files`` (count of usable files), ``failed_files`` (list of
         {file, error}), ``recorded_hours`` (h), ``sample_rate_hz`` (Hz),
         ``first_start_utc``, ``last_end_utc``, ``gaps`` (list of {after_file,
-        start_utc, seconds}), ``overlaps`` (same form, seconds > 0), ``flat_response``
-        and ``response``: one {frequency_hz, nominal_hz, system_db (dB re 1 V/µPa),
-        clip_level_db (dB re 1 µPa, zero-to-peak)} per one-third-octave band.
+        start_utc, seconds}), ``overlaps`` (same form, seconds > 0), ``flat_response``,
+        ``response``: one {frequency_hz, nominal_hz, system_db (dB re 1 V/µPa),
+        clip_level_db (dB re 1 µPa, zero-to-peak)} per one-third-octave band, and
+        ``warnings``: values that are possible but unusual, one line each.
+
+    Raises
+    ------
+    InputError
+        When no file of the deployment can be used: there is nothing to calibrate, and
+        the fix (the files, or the manifest's glob) is the user's.
     """
     dep = deployment if isinstance(deployment, Deployment) else load_deployment(deployment)
+    if not dep.files:
+        first = dep.faults[0] if dep.faults else None
+        raise InputError(
+            f"{dep.manifest_path}: none of the {len(dep.faults)} file(s) matching {dep.glob!r} in "
+            f"{shown(dep.audio_dir)} can be used"
+            + (f" (first: {shown(first.name)}: {shown(first.error)})" if first else "")
+            + "; replace the damaged files or point glob at the recordings"
+        )
     response = []
     if dep.sample_rate_hz:
         bands = fractional_octave_bands(_LOWEST_BAND_HZ, dep.sample_rate_hz / 2.0, fraction=3)
@@ -88,6 +104,7 @@ def calibration_summary(deployment: Deployment | str | Path) -> dict[str, Any]:
         "flat_response": dep.chain.is_flat,
         "full_scale_volts": dep.chain.full_scale_volts,
         "response": response,
+        "warnings": list(dep.warnings),
     }
 
 
@@ -114,6 +131,8 @@ def format_calibration_summary(summary: dict[str, Any], max_gaps: int = 10) -> s
             lines.append(f"  {g['start_utc']}  {g['seconds']:>10.1f} s  after {g['after_file']}")
     for f in s["failed_files"]:
         lines.append(f"failed           {f['file']}: {f['error']}")
+    for w in s.get("warnings", []):
+        lines.append(f"warning          {w}")
     lines.append(
         f"response         {'flat' if s['flat_response'] else 'from tables'}, full scale {s['full_scale_volts']:g} V"
     )

@@ -18,7 +18,7 @@ from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import numpy as np
-from callsieve.features.calibration import RecordingChain, ResponseCurve
+from callsieve.features.calibration import PLAUSIBLE, RecordingChain, ResponseCurve
 from callsieve.features.propagation import Seawater
 from callsieve.features.streaming import AudioInfo, AudioReader, AudioReadError, audio_info
 
@@ -141,6 +141,8 @@ class Deployment:
     files : list of RecordedFile, usable files sorted by start
     faults : list of FileFault, files skipped with the reason
     sample_rate_hz : int, Hz, the rate of the usable files
+    warnings : list of str, values that are possible but unusual (calibration, rate,
+        sample format), one line each
     """
 
     name: str
@@ -154,6 +156,7 @@ class Deployment:
     files: list[RecordedFile] = field(default_factory=list)
     faults: list[FileFault] = field(default_factory=list)
     sample_rate_hz: int = 0
+    warnings: list[str] = field(default_factory=list)
 
     @property
     def first_start_utc(self) -> datetime | None:
@@ -261,42 +264,112 @@ def parse_file_start(name: str, timestamp_format: str) -> datetime | None:
 # --- the manifest ------------------------------------------------------------------
 
 
-def read_response_table(path: Path, value_column: str, where: str) -> ResponseCurve:
+def read_response_table(
+    path: Path,
+    value_column: str,
+    where: str,
+    quantity: str | None = None,
+    warnings: list[str] | None = None,
+) -> ResponseCurve:
     """Read a calibration table with columns ``frequency_hz`` and ``value_column`` (dB).
+
+    Parameters
+    ----------
+    path : Path, CSV (UTF-8)
+    value_column : str, the column of levels, dB
+    where : str, what names the table in messages (the manifest and its field)
+    quantity : str, optional; a key of ``PLAUSIBLE`` the levels are checked against
+        (with the frequencies, always): impossible values are refused, unusual ones noted
+    warnings : list of str, optional; where notes of unusual values are appended
 
     Raises
     ------
     InputError
         Naming the file, the row and what is wrong.
     """
+    name = shown(path)
     try:
         with open(path, newline="", encoding="utf-8-sig") as fh:
-            rows = list(csv.DictReader(fh))
-            columns = rows[0].keys() if rows else []
+            reader = csv.DictReader(fh)
+            rows = list(reader)
+            columns = reader.fieldnames or []
     except OSError as exc:
-        raise InputError(f"{where}: cannot read {path}: {exc.strerror}") from None
+        raise InputError(f"{where}: cannot read {name}: {exc.strerror}") from None
+    except ValueError as exc:  # not UTF-8 (UnicodeDecodeError), a NUL in the path
+        raise InputError(f"{where}: cannot read {name}: {_reason(exc)}") from None
+    except csv.Error as exc:
+        raise InputError(f"{name}: not a readable CSV table ({shown(exc)})") from None
     for col in ("frequency_hz", value_column):
         if col not in columns:
             raise InputError(
-                f"{path}: needs the columns frequency_hz,{value_column} in its first line "
-                f"(found: {','.join(columns) or 'nothing'})"
+                f"{name}: needs the columns frequency_hz,{value_column} in its first line "
+                f"(found: {shown(','.join(c or '' for c in columns)) or 'nothing'})"
             )
+    if not rows:
+        raise InputError(f"{name}: holds no rows under its header; add one row per frequency")
     freq, level = [], []
     for row_no, row in enumerate(rows, start=2):
         try:
             f, v = float(row["frequency_hz"]), float(row[value_column])
         except (TypeError, ValueError):
-            raise InputError(f"{path}: row {row_no}: frequency_hz and {value_column} must be numbers") from None
+            raise InputError(f"{name}: row {row_no}: frequency_hz and {value_column} must be numbers") from None
         if not (np.isfinite(f) and np.isfinite(v)) or f <= 0:
-            raise InputError(f"{path}: row {row_no}: frequency_hz must be > 0 and values finite")
+            raise InputError(f"{name}: row {row_no}: frequency_hz must be > 0 and values finite")
         if freq and f <= freq[-1]:
             raise InputError(
-                f"{path}: row {row_no}: frequency_hz {f:g} does not increase "
+                f"{name}: row {row_no}: frequency_hz {f:g} does not increase "
                 f"(previous row {freq[-1]:g}); sort the table by frequency"
             )
+        _plausible("frequency_hz", f, f"{name}: row {row_no}: frequency_hz", None)
+        if quantity is not None:
+            _plausible(quantity, v, f"{name}: row {row_no}: {value_column}", warnings)
         freq.append(f)
         level.append(v)
+    usual = PLAUSIBLE["frequency_hz"]
+    if warnings is not None and (freq[0] < usual.usual[0] or freq[-1] > usual.usual[1]):
+        warnings.append(
+            f"{name}: frequency_hz spans {freq[0]:g} .. {freq[-1]:g} Hz ({usual.usual_text()}); "
+            "check that the table is in Hz"
+        )
     return ResponseCurve(np.array(freq), np.array(level))
+
+
+def shown(text: object) -> str:
+    """``text`` fit for a one-line message: characters that would break the line escaped.
+
+    File names, keys and columns come from the user's files and may hold any character.
+    """
+    s = str(text)
+    return s if s.isprintable() else "".join(c if c.isprintable() else repr(c)[1:-1] for c in s)
+
+
+def _reason(exc: Exception) -> str:
+    """A file-reading error in words, with the fix for text that is not UTF-8."""
+    if isinstance(exc, UnicodeDecodeError):
+        return f"not UTF-8 text (byte {exc.start}); save it as UTF-8"
+    return str(exc)
+
+
+def _plausible(quantity: str, value: float, where: str, warnings: list[str] | None) -> None:
+    """Refuse a value no recorder has (one line: the value, the file, the usual range);
+    note an unusual one in ``warnings``.
+    """
+    rng = PLAUSIBLE[quantity]
+    verdict = rng.judge(value)
+    if verdict == "usual":
+        return
+    if verdict == "unusual":
+        if warnings is not None:
+            warnings.append(f"{where}: {value:g} {rng.unit} is an unusual {rng.what} ({rng.usual_text()}); check it")
+        return
+    hint = ""
+    if quantity == "hydrophone_sensitivity_db" and rng.judge(-value) == "usual":
+        hint = f"; sensitivities are negative: did you mean {-value:g}?"
+    elif quantity == "hydrophone_sensitivity_db" and rng.judge(value - 120.0) == "usual":
+        hint = f"; if it is in dB re 1 V/Pa, write {value - 120.0:g} (dB re 1 V/µPa)"
+    elif quantity == "full_scale_volts" and rng.judge(value / 1000.0) == "usual":
+        hint = f"; if it is in millivolts, write {value / 1000.0:g}"
+    raise InputError(f"{where}: {value:g} {rng.unit} is not a possible {rng.what} ({rng.usual_text()}){hint}")
 
 
 def _number(
@@ -310,7 +383,10 @@ def _number(
     value = table[key]
     if isinstance(value, bool) or not isinstance(value, int | float):
         raise InputError(f"{where} {key}: must be a number, got {value!r}")
-    value = float(value)
+    try:
+        value = float(value)
+    except OverflowError:  # TOML integers have no size limit here; floats do
+        value = float("inf") if value > 0 else float("-inf")
     if not np.isfinite(value) or (positive and value <= 0):
         raise InputError(f"{where} {key}: must be a finite number{' > 0' if positive else ''}, got {value:g}")
     if (lo is not None and value < lo) or (hi is not None and value > hi):
@@ -319,7 +395,14 @@ def _number(
 
 
 def _curve(
-    cal: dict, flat_key: str, csv_key: str, value_column: str, base: Path, where: str, what: str
+    cal: dict,
+    flat_key: str,
+    csv_key: str,
+    value_column: str,
+    base: Path,
+    where: str,
+    what: str,
+    warnings: list[str] | None = None,
 ) -> ResponseCurve:
     has_flat, has_csv = flat_key in cal, csv_key in cal
     if has_flat and has_csv:
@@ -327,10 +410,38 @@ def _curve(
     if not (has_flat or has_csv):
         raise InputError(f"{where} {flat_key}: missing; give {flat_key} ({what}) or {csv_key}")
     if has_flat:
-        return ResponseCurve.flat(_number(cal, flat_key, where))
-    if not isinstance(cal[csv_key], str):
+        value = _number(cal, flat_key, where)
+        _plausible(flat_key, value, f"{where} {flat_key}", warnings)
+        return ResponseCurve.flat(value)
+    if not isinstance(cal[csv_key], str) or not cal[csv_key]:
         raise InputError(f"{where} {csv_key}: must be a file path in quotes")
-    return read_response_table(base / cal[csv_key], value_column, f"{where} {csv_key}")
+    return read_response_table(base / cal[csv_key], value_column, f"{where} {csv_key}", flat_key, warnings)
+
+
+def _check_chain(chain: RecordingChain, where: str, warnings: list[str]) -> None:
+    """Refuse a chain whose clip level no recording could have; note an unusual one.
+
+    Each value may be possible alone and the three together not: the clip level is
+    checked at every frequency of the tables (its extremes lie there).
+    """
+    f = np.union1d(chain.hydrophone_sensitivity.frequency_hz, chain.preamp_gain.frequency_hz)
+    clip = chain.clip_level_db(f)
+    rng = PLAUSIBLE["clip_level_db"]
+    for value in (float(clip.min()), float(clip.max())):
+        verdict = rng.judge(value)
+        text = (
+            f"{where}: full_scale_volts, preamplifier gain and hydrophone sensitivity give a "
+            f"{rng.what} of {value:.1f} {rng.unit} ({rng.usual_text()})"
+        )
+        if verdict == "impossible":
+            raise InputError(
+                text
+                + (": the sea's own noise would be at full scale" if value < rng.possible[0] else "")
+                + "; check the three values"
+            )
+        if verdict == "unusual":
+            warnings.append(text + "; check it")
+            return
 
 
 def _check_keys(doc: dict, path: Path) -> None:
@@ -338,16 +449,16 @@ def _check_keys(doc: dict, path: Path) -> None:
         if table not in _KNOWN:
             hint = difflib.get_close_matches(table, _KNOWN, n=1)
             raise InputError(
-                f"{path}: [{table}]: unknown table"
+                f"{path}: [{shown(table)}]: unknown table"
                 + (f"; did you mean [{hint[0]}]?" if hint else "; expected [deployment], [site], [calibration]")
             )
         if not isinstance(value, dict):
-            raise InputError(f"{path}: {table}: must be a table ([{table}])")
+            raise InputError(f"{path}: {shown(table)}: must be a table ([{shown(table)}])")
         for key in value:
             if key not in _KNOWN[table]:
                 hint = difflib.get_close_matches(key, _KNOWN[table], n=1)
                 raise InputError(
-                    f"{path}: [{table}] {key}: unknown field"
+                    f"{path}: [{table}] {shown(key)}: unknown field"
                     + (f"; did you mean {hint[0]}?" if hint else f"; known: {', '.join(sorted(_KNOWN[table]))}")
                 )
 
@@ -371,7 +482,10 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
         file, or a file name without a parseable time.
     """
     path = Path(manifest_path)
-    doc = read_toml(path, "manifest")
+    try:
+        doc = read_toml(path, "manifest")
+    except ValueError as exc:  # bytes that are not UTF-8 (tomllib reads UTF-8 only)
+        raise InputError(f"{path}: cannot read the manifest: {_reason(exc)}") from None
     _check_keys(doc, path)
     base = path.resolve().parent
 
@@ -397,7 +511,13 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     try:
         timestamp_regex(fmt)
     except ValueError as exc:
-        raise InputError(f"{where} timestamp_format: {fmt!r} {exc}") from None
+        raise InputError(f"{where} timestamp_format: {fmt!r} {shown(exc)}") from None
+    try:  # strptime compiles the pattern; a directive given twice breaks it (re.error)
+        datetime.strptime(datetime(2001, 2, 3, 4, 5, 6, tzinfo=UTC).strftime(fmt), fmt)
+    except re.error:
+        raise InputError(f"{where} timestamp_format: {fmt!r} gives a directive twice") from None
+    except ValueError:  # a time that does not read back is found (or not) in the names
+        pass
 
     site_doc = doc.get("site", {})
     sw = f"{path}: [site]"
@@ -419,8 +539,11 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     cw = f"{path}: [calibration]"
     if "full_scale_volts" not in cal:
         raise InputError(f"{cw} full_scale_volts: missing; the 0-to-peak volts of digital full scale")
+    warnings: list[str] = []
+    full_scale = _number(cal, "full_scale_volts", cw, positive=True)
+    _plausible("full_scale_volts", full_scale, f"{cw} full_scale_volts", warnings)
     chain = RecordingChain(
-        _number(cal, "full_scale_volts", cw, positive=True),
+        full_scale,
         _curve(
             cal,
             "hydrophone_sensitivity_db",
@@ -429,17 +552,27 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
             base,
             cw,
             "dB re 1 V/µPa",
+            warnings,
         ),
-        _curve(cal, "preamp_gain_db", "preamp_gain_csv", "gain_db", base, cw, "dB"),
+        _curve(cal, "preamp_gain_db", "preamp_gain_csv", "gain_db", base, cw, "dB", warnings),
     )
+    _check_chain(chain, cw, warnings)
 
     audio_dir = (base / dep["audio_dir"]).resolve()
     if not audio_dir.is_dir():
-        raise InputError(f"{where} audio_dir: {audio_dir} is not a folder")
+        raise InputError(f"{where} audio_dir: {shown(audio_dir)} is not a folder")
     files, faults = _scan(audio_dir, glob, fmt, path)
     deployment = Deployment(name, path, audio_dir, glob, fmt, channel, site, chain)
     if not files and not faults:
-        raise InputError(f"{where} glob: no file in {audio_dir} matches {glob!r}")
+        raise InputError(f"{where} glob: no file in {shown(audio_dir)} matches {glob!r}")
+    # A rate no sound recorder has is a damaged header: a fault of that file, never the
+    # deployment's rate.
+    rates = PLAUSIBLE["sample_rate_hz"]
+    for f in [f for f in files if rates.judge(f.info.sample_rate_hz) == "impossible"]:
+        files.remove(f)
+        faults.append(
+            FileFault(f.name, f"sample rate {f.info.sample_rate_hz} Hz is not possible ({rates.usual_text()})")
+        )
     rate = Counter(f.info.sample_rate_hz for f in files).most_common(1)
     deployment_rate = rate[0][0] if rate else 0
     usable = []
@@ -460,7 +593,30 @@ def load_deployment(manifest_path: str | Path) -> Deployment:
     object.__setattr__(deployment, "files", usable)
     object.__setattr__(deployment, "faults", sorted(faults, key=lambda x: x.name))
     object.__setattr__(deployment, "sample_rate_hz", deployment_rate)
+    object.__setattr__(deployment, "warnings", warnings + _recording_warnings(path, usable, deployment_rate))
     return deployment
+
+
+# Sample formats with 16 bits or more (libsndfile's names); others hold less dynamic
+# range than levels near the noise floor need, or are lossy.
+_FULL_FORMATS = {"PCM_16", "PCM_24", "PCM_32", "FLOAT", "DOUBLE"}
+
+
+def _recording_warnings(manifest: Path, files: list[RecordedFile], rate_hz: int) -> list[str]:
+    """Possible but unusual: the deployment's sample rate, sample formats under 16 bits."""
+    out = []
+    if files and PLAUSIBLE["sample_rate_hz"].judge(rate_hz) == "unusual":
+        out.append(
+            f"{manifest}: sample rate {rate_hz} Hz is unusual for a sound recorder "
+            f"({PLAUSIBLE['sample_rate_hz'].usual_text()}); check the files"
+        )
+    odd = Counter(f.info.subtype for f in files if f.info.subtype not in _FULL_FORMATS)
+    for subtype, n in sorted(odd.items()):
+        out.append(
+            f"{manifest}: {n} file(s) hold {subtype} samples, not 16-bit or more: levels near the "
+            "noise floor and the clip flag are less exact"
+        )
+    return out
 
 
 # Bytes read from each end of a file to tell copies apart: with the size, enough to
@@ -551,10 +707,19 @@ def set_aside_repeats(
 
 def _scan(audio_dir: Path, glob: str, fmt: str, manifest: Path) -> tuple[list[RecordedFile], list[FileFault]]:
     files, faults = [], []
-    for p in sorted(audio_dir.glob(glob)):
+    try:
+        found = sorted(audio_dir.glob(glob))
+    except (ValueError, NotImplementedError) as exc:  # '/abs/*', 'a**b'
+        raise InputError(f"{manifest}: [deployment] glob: {glob!r} cannot be used ({shown(exc)})") from None
+    for p in found:
         if not p.is_file():
             continue
         name = p.relative_to(audio_dir).as_posix()
+        if ".." in Path(name).parts:
+            raise InputError(
+                f"{manifest}: [deployment] glob: {glob!r} reaches outside audio_dir ({name}); "
+                "keep the pattern inside the folder"
+            )
         start = parse_file_start(name, fmt)
         if start is None:
             raise InputError(

@@ -3,11 +3,13 @@
 from __future__ import annotations
 
 import csv
+import io
 import math
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
-from .deployment import Deployment
+from .deployment import Deployment, shown
 from .errors import InputError
 
 __all__ = ["Annotation", "read_label_table", "REQUIRED_COLUMNS", "BACKGROUND"]
@@ -76,13 +78,13 @@ def read_label_table(
     """
     path = Path(path)
     by_name = {d.name: d for d in deployments}
-    try:
-        fh = open(path, newline="", encoding="utf-8-sig")
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read the label table: {exc.strerror}") from None
+    fh = io.StringIO(read_table_text(path))
     with fh:
         reader = csv.DictReader(fh)
-        columns = reader.fieldnames or []
+        try:
+            columns = reader.fieldnames or []
+        except csv.Error as exc:
+            raise InputError(f"{path}: row 1: not readable as CSV ({shown(exc)})") from None
         missing = [c for c in REQUIRED_COLUMNS if c not in columns]
         if missing:
             raise InputError(
@@ -96,7 +98,8 @@ def read_label_table(
             )
         files = {name: {f.name: f for f in d.files} | {x.name: None for x in d.faults} for name, d in by_name.items()}
         out: list[Annotation] = []
-        for row_no, row in enumerate(reader, start=2):
+        seen: dict[tuple, int] = {}
+        for row_no, row in enumerate(_rows(reader, path), start=2):
             where = f"{path}: row {row_no}"
             if None in row:
                 raise InputError(
@@ -117,7 +120,7 @@ def read_label_table(
             if name not in files[dep_name]:
                 raise InputError(
                     f"{where}: file {name!r} is not in deployment {dep_name!r} "
-                    f"({by_name[dep_name].audio_dir}); check the name and the manifest's glob"
+                    f"({shown(by_name[dep_name].audio_dir)}); check the name and the manifest's glob"
                 )
             label = (row.get("label") or "").strip()
             if not label:
@@ -144,6 +147,14 @@ def read_label_table(
             high = _float(row, "high_hz", where) if (row.get("high_hz") or "").strip() else None
             if low is not None and high is not None and not high > low:
                 raise InputError(f"{where}: high_hz {high:g} is not above low_hz {low:g}")
+            for key, value in (("low_hz", low), ("high_hz", high)):
+                if value is not None and value < 0:
+                    raise InputError(f"{where}: {key} {value:g} is below 0 Hz")
+            # The same call twice would count twice, as an example or as a truth call.
+            key = (dep_name, name, start, end, label)
+            if key in seen:
+                raise InputError(f"{where}: repeats row {seen[key]} (same file, start_s, end_s and label); remove one")
+            seen[key] = row_no
             if label == BACKGROUND:
                 raise InputError(
                     f"{where}: '{BACKGROUND}' is reserved for unlabelled time; leave such time unannotated"
@@ -152,3 +163,22 @@ def read_label_table(
     if not out:
         raise InputError(f"{path}: holds no label rows")
     return out
+
+
+def read_table_text(path: str | Path) -> str:
+    """The text of a CSV table (UTF-8, with or without a byte-order mark), or InputError."""
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            return fh.read()
+    except OSError as exc:
+        raise InputError(f"{path}: cannot read the label table: {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{path}: not UTF-8 text (byte {exc.start}); save the table as CSV in UTF-8") from None
+
+
+def _rows(reader: csv.DictReader, path: Path) -> Iterator[dict]:
+    """The rows of ``reader``; a line the csv module cannot split is refused with its line."""
+    try:
+        yield from reader
+    except csv.Error as exc:  # a field past the csv module's size limit
+        raise InputError(f"{path}: line {reader.line_num}: not readable as CSV ({shown(exc)})") from None

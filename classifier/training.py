@@ -28,6 +28,7 @@ from .errors import InputError
 from .labels import BACKGROUND, Annotation
 from .model import CallClassifier, CallModel
 from .outputs import check_output
+from .threads import THREADS_ENV, fit_threads, limited_threads, thread_setting
 
 __all__ = [
     "LabelledSet",
@@ -446,6 +447,7 @@ class TrainingResult:
     validation: dict[str, Any]
     config: TrainingConfig
     seconds: dict[str, float]
+    threads: int = 1  # BLAS/OpenMP threads of the fit
 
 
 def train_model(
@@ -488,9 +490,14 @@ def train_model(
         )
     examples = collect_examples(sets, settings, config, target, progress)
     t1 = time.perf_counter()
-    estimator = _estimator(config, examples.names).fit(
-        examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
-    )
+    # OpenMP threads that share cores with other busy processes stall at every barrier of
+    # the boosting (docs/threads.md): the fit takes only the cores the load leaves free.
+    with limited_threads(fit_threads()) as threads:
+        if progress:
+            progress(f"fitting with {threads} thread(s) (set {THREADS_ENV} to change)")
+        estimator = _estimator(config, examples.names).fit(
+            examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
+        )
     t2 = time.perf_counter()
     validation = cross_validate(estimator, examples) | {"group_by": config.group_by, "grouping": examples.grouping}
     t3 = time.perf_counter()
@@ -513,24 +520,24 @@ def train_model(
     }
     model = CallModel(estimator, settings, examples.names, target, summary)
     seconds = {"describe": t1 - t0, "fit_and_cross_validate": t2 - t1, "metrics": t3 - t2}
-    return TrainingResult(model, examples, validation, replace(config), seconds)
+    return TrainingResult(model, examples, validation, replace(config), seconds, threads)
 
 
 def _pair_tables(label_paths: list[Path], deployments: list[Deployment]) -> list[LabelledSet]:
     """Read each label table against the deployment(s) its rows name (or its files fit)."""
     import csv
+    import io
 
-    from .labels import read_label_table
+    from .labels import read_label_table, read_table_text
 
     sets: list[LabelledSet] = []
     for path in label_paths:
         try:
-            with open(path, newline="", encoding="utf-8-sig") as fh:
-                reader = csv.DictReader(fh)
-                columns = reader.fieldnames or []
-                files = {(r.get("file") or "").strip() for r in reader}
-        except OSError as exc:
-            raise InputError(f"{path}: cannot read the label table: {exc.strerror}") from None
+            reader = csv.DictReader(io.StringIO(read_table_text(path)))
+            columns = reader.fieldnames or []
+            files = {(r.get("file") or "").strip() for r in reader}
+        except csv.Error:  # read_label_table names the line
+            columns, files = ["deployment"], set()
         if "deployment" in columns or len(deployments) == 1:
             notes = read_label_table(path, deployments)
         else:
@@ -631,6 +638,7 @@ def train(
         force=force,
     )
     config = load_training_config(config_path)
+    thread_setting()  # a bad CALLSIEVE_THREADS is refused now, not after the describing
     deployments = [load_deployment(m) for m in manifests]
     names = [d.name for d in deployments]
     if len(set(names)) != len(names):
@@ -653,8 +661,9 @@ def train(
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],
         "cv_grouping": result.validation["grouping"],
-        "warnings": training_warnings(sets, result.validation, target),
+        "warnings": [w for d in deployments for w in d.warnings] + training_warnings(sets, result.validation, target),
         "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
+        "threads": result.threads,
     }
     if track:
         from .tracking import log_training_run

@@ -20,10 +20,74 @@ from ._validation import ParameterError, check_increasing, check_positive
 __all__ = [
     "ResponseCurve",
     "RecordingChain",
+    "PlausibleRange",
+    "PLAUSIBLE",
     "pressure_from_samples",
     "samples_from_pressure",
     "band_pressure_fir",
 ]
+
+
+@dataclass(frozen=True)
+class PlausibleRange:
+    """The values one quantity of a recording chain takes: usual ones and possible ones.
+
+    Parameters
+    ----------
+    what : str, the quantity in words ("hydrophone sensitivity")
+    unit : str, its unit ("dB re 1 V/µPa")
+    usual : (float, float), the range most recorders fall in; outside it a value is
+        unusual but possible (warn)
+    possible : (float, float), beyond it no recorder has such a value: a typing error
+        (refuse)
+    """
+
+    what: str
+    unit: str
+    usual: tuple[float, float]
+    possible: tuple[float, float]
+
+    def judge(self, value: float) -> str:
+        """``'usual'``, ``'unusual'`` or ``'impossible'`` for a finite ``value`` in ``unit``."""
+        if not self.possible[0] <= value <= self.possible[1]:
+            return "impossible"
+        if not self.usual[0] <= value <= self.usual[1]:
+            return "unusual"
+        return "usual"
+
+    def usual_text(self) -> str:
+        """The usual range in words, for messages."""
+        return f"usual range {self.usual[0]:g} .. {self.usual[1]:g} {self.unit}, common practice"
+
+
+# Plausible values of a recording chain. Common practice, from memory (manufacturers'
+# data sheets and recorders seen in use), not from a standard: the usual edges are
+# approximate, and the possible ones deliberately wide, so that only a typing error
+# (a lost minus sign, millivolts for volts, kHz for Hz) is refused.
+PLAUSIBLE = {
+    # Hydrophones: about -220 (rugged, for loud sources) to -150 dB re 1 V/µPa; with a
+    # built-in preamplifier up to about -120 (the upper edge is the least sure, by about
+    # 10 dB). Above -90 dB (31.6 V/Pa) no transducer exists; 0 dB would be 1 V per µPa.
+    "hydrophone_sensitivity_db": PlausibleRange(
+        "hydrophone sensitivity", "dB re 1 V/µPa", (-220.0, -120.0), (-260.0, -90.0)
+    ),
+    # Preamplifiers: 0 (none) to about 70 dB of gain in recorders' settings; a negative
+    # gain is an attenuator (unusual). Beyond +-100 dB no recording amplifier goes.
+    "preamp_gain_db": PlausibleRange("preamplifier gain", "dB", (0.0, 70.0), (-100.0, 100.0)),
+    # Converters: 0-to-peak full scale of about 0.1 to 20 V (1, 1.41, 2.5, 5 V are
+    # common). Below 1 mV or above 100 V it is millivolts typed as volts, or the reverse.
+    "full_scale_volts": PlausibleRange("converter full scale (0-to-peak)", "V", (0.1, 20.0), (1e-3, 100.0)),
+    # Calibration tables: about 1 Hz to 1 MHz; above 10 MHz they are not sound in water.
+    "frequency_hz": PlausibleRange("calibration table frequency", "Hz", (1.0, 1e6), (1e-3, 1e7)),
+    # Sound recordings: about 1 kHz to 1 MHz (a few low-frequency recorders and the
+    # hydrophone channels of ocean-bottom seismometers run at 100-500 Hz).
+    "sample_rate_hz": PlausibleRange("sample rate", "Hz", (1000.0, 1e6), (10.0, 1e7)),
+    # The whole chain: the 0-to-peak pressure at digital full scale. Under 60 dB re 1 µPa
+    # the quietest sea would drive the converter to full scale all the time; above 300
+    # dB (1 GPa) water cannot carry the sound. Recorders for animal calls clip at about
+    # 130 to 200 dB re 1 µPa; the usual range here is wider.
+    "clip_level_db": PlausibleRange("clip level (0-to-peak)", "dB re 1 µPa", (100.0, 250.0), (60.0, 300.0)),
+}
 
 
 @dataclass(frozen=True, eq=False)
