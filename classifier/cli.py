@@ -139,6 +139,8 @@ def _cmd_score(args: argparse.Namespace) -> int:
         print(f"failed: {f['file']}: {f['error']}")
     for f in summary["set_aside"]:
         print(f"left out: {f['file']}: {f['error']}")
+    for w in summary["warnings"]:
+        print(f"callsieve: warning: {w}", file=sys.stderr)
     for f in summary["nonfinite"]:
         print(
             f"warning: {f['file']}: {f['samples']} samples are not numbers (NaN or infinite); they were scored "
@@ -387,7 +389,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     except (InputError, ParameterError) as exc:
         if debug:
             traceback.print_exc()
-        print(f"callsieve: error: {exc}", file=sys.stderr)
+        # One line, whatever a path or value typed on the command line held.
+        print(f"callsieve: error: {' '.join(str(exc).splitlines())}", file=sys.stderr)
         return EXIT_INPUT
     except BrokenPipeError:
         # The reader of stdout stopped early (`callsieve calibrate --json | head`): not an

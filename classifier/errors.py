@@ -23,4 +23,6 @@ def read_toml(path: Path, what: str) -> dict[str, Any]:
     except OSError as exc:
         raise InputError(f"{path}: cannot read: {exc.strerror}") from None
     except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"{path}: not valid TOML ({exc})") from None
+        raise InputError(f"{path}: not valid TOML ({' '.join(str(exc).split())})") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: not UTF-8 text; save the {what} as UTF-8") from None

@@ -50,6 +50,7 @@ from .store import (
     upsert_deployment,
     upsert_file,
 )
+from .threads import fit_threads, thread_setting, worker_threads
 
 __all__ = ["FileResult", "score_file", "score_deployment", "DEFAULT_THRESHOLD"]
 
@@ -473,6 +474,7 @@ def score_deployment(
         raise InputError(f"--threshold must be in 0..1, got {threshold:g}")
     if jobs < 1:
         raise InputError(f"--jobs must be >= 1, got {jobs}")
+    thread_setting()  # a bad CALLSIEVE_THREADS is exit 2 before any work
     with _worker_pool(jobs, scheduler) as pool:
         return _score_deployment(model_path, manifest, db, threshold, jobs, scheduler, block_s, progress, pool)
 
@@ -632,6 +634,7 @@ def _score_deployment(
         "skipped": skipped,
         "failed": failed,
         "set_aside": set_aside,
+        "warnings": list(dep.warnings),
         "nonfinite": nonfinite,
         "detections": int(total),
         "detections_now": stored,
@@ -705,7 +708,18 @@ def _results(
             shared = client.scatter(model, broadcast=True)
             futures = [
                 client.submit(
-                    score_file, shared, p, n, dep.chain, dep.channel, threshold, block_s, 1, True, *ctx, pure=False
+                    score_file,
+                    shared,
+                    p,
+                    n,
+                    dep.chain,
+                    dep.channel,
+                    threshold,
+                    block_s,
+                    thread_setting() or 1,
+                    True,
+                    *ctx,
+                    pure=False,
                 )
                 for p, n, ctx in args
             ]
@@ -714,12 +728,13 @@ def _results(
         return
     if jobs == 1:
         for p, n, ctx in args:
-            yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s, None, True, *ctx)
+            # The free cores, judged per file (docs/threads.md).
+            yield score_file(model, p, n, dep.chain, dep.channel, threshold, block_s, fit_threads(), True, *ctx)
         return
-    # Each worker gets its share of the cores for BLAS/OpenMP, so they do not oversubscribe.
     from joblib import delayed
 
-    threads = max((os.cpu_count() or 1) // jobs, 1)
+    # One thread per worker: the parallelism is in the processes (docs/threads.md).
+    threads = worker_threads(jobs)
     parallel, warm = pool
     for _ in warm:  # the workers' start-up, begun before the model and manifest were read
         pass
