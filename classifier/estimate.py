@@ -41,6 +41,7 @@ ESTIMATE_KEYS = (
     "recall_audit",
     "density",
     "presence",
+    "trained_on_verified",
     "caution",
 )
 # A stratum whose verified precision lies this far below the confidence the model gave
@@ -84,8 +85,9 @@ def _item_verdicts(con: sqlite3.Connection, sample_id: int, label: str) -> dict[
     items: dict[int, dict] = {}
     for r in con.execute(
         "SELECT i.detection_id, i.stratum, i.inclusion_probability, d.confidence, d.file_id, d.start_s, d.end_s, "
-        "d.superseded, f.start_utc FROM review_items i JOIN detections d USING (detection_id) "
-        "JOIN files f ON f.file_id=d.file_id WHERE i.sample_id=?",
+        "d.superseded, f.start_utc, f.name AS file, dep.name AS deployment FROM review_items i "
+        "JOIN detections d USING (detection_id) JOIN files f ON f.file_id=d.file_id "
+        "JOIN deployments dep ON dep.deployment_id=f.deployment_id WHERE i.sample_id=?",
         (sample_id,),
     ):
         items[r[0]] = dict(r) | {"votes": []}
@@ -356,6 +358,7 @@ def estimate_run(
         items = _item_verdicts(con, sample["sample_id"], label)
         for it in items.values():
             it["stratum"] = renumber[it["stratum"]]
+        trained = _set_aside_training_audio(con, run_id, items)
         L = len(strata_rows)
         N = np.array([s["population"] for s in strata_rows], int)
         edges = np.array([strata_rows[0]["low"]] + [s["high"] for s in strata_rows], float)
@@ -476,10 +479,39 @@ def estimate_run(
         "recall_audit": recall_audit,
         "density": density,
         "presence": presence,
+        "trained_on_verified": trained,
         "caution": (
             "Estimates hold for this run and its verified sample only. Detections are candidates for trained "
             "analysts; where results feed mitigation or permit decisions, local regulations and qualified "
             "practice decide."
+        ),
+    }
+
+
+def _set_aside_training_audio(con: sqlite3.Connection, run_id: int, items: dict[int, dict]) -> dict:
+    """Leave out verdicts on audio the run's model was trained on (its verified stretches).
+
+    A model retrained from verdicts knows those stretches: counting their verdicts again
+    would flatter its precision. They are set aside (verdict None) and counted.
+    """
+    row = con.execute("SELECT parameters FROM runs WHERE run_id=?", (run_id,)).fetchone()
+    spans = json.loads(row[0]).get("verified_spans", []) if row else []
+    by_file: dict[tuple[str, str], list[tuple[float, float]]] = {}
+    for sp in spans:
+        by_file.setdefault((sp["deployment"], sp["file"]), []).append((sp["start_s"], sp["end_s"]))
+    left_out = 0
+    for it in items.values():
+        near = by_file.get((it["deployment"], it["file"]), [])
+        if it["verdict"] is not None and any(a < it["end_s"] and it["start_s"] < b for a, b in near):
+            it["verdict"] = None
+            left_out += 1
+    return {
+        "training_stretches": len(spans),
+        "verdicts_set_aside": left_out,
+        "message": (
+            f"{left_out} verdict(s) lie on audio this model was trained on and are left out"
+            if left_out
+            else "no verdict lies on audio this model was trained on"
         ),
     }
 
@@ -598,5 +630,7 @@ def format_estimate(r: dict[str, Any]) -> str:
             f"({p['days_expected_low']:.1f}-{p['days_expected_high']:.1f})"
         )
     lines.append(("DRIFT: " if r["drift"]["flag"] else "calibration: ") + r["drift"]["message"])
+    if r["trained_on_verified"]["training_stretches"]:
+        lines.append(f"training audio: {r['trained_on_verified']['message']}")
     lines.append(r["caution"])
     return "\n".join(lines)

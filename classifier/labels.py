@@ -33,6 +33,8 @@ class Annotation:
     low_hz: float | None
     high_hz: float | None
     row: int
+    # A row of a partial table: only its own stretch is known (docs/formats.md §3).
+    partial: bool = False
 
     @property
     def duration_s(self) -> float:
@@ -155,14 +157,25 @@ def read_label_table(
             if key in seen:
                 raise InputError(f"{where}: repeats row {seen[key]} (same file, start_s, end_s and label); remove one")
             seen[key] = row_no
-            if label == BACKGROUND:
+            partial = _partial(row, where) if "partial" in columns else False
+            if label == BACKGROUND and not partial:
                 raise InputError(
-                    f"{where}: '{BACKGROUND}' is reserved for unlabelled time; leave such time unannotated"
+                    f"{where}: '{BACKGROUND}' is reserved for unlabelled time; leave such time unannotated "
+                    "(in a partial table, mark the row partial=1 for a verified stretch without a call)"
                 )
-            out.append(Annotation(dep_name, name, start, min(end, rec.duration_s), label, low, high, row_no))
+            out.append(Annotation(dep_name, name, start, min(end, rec.duration_s), label, low, high, row_no, partial))
     if not out:
         raise InputError(f"{path}: holds no label rows")
     return out
+
+
+def _partial(row: dict, where: str) -> bool:
+    text = (row.get("partial") or "").strip().lower()
+    if text in ("", "0", "no", "false"):
+        return False
+    if text in ("1", "yes", "true"):
+        return True
+    raise InputError(f"{where}: partial must be 1 or 0 (yes or no), got {text!r}")
 
 
 def read_table_text(path: str | Path) -> str:

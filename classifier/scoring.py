@@ -349,6 +349,8 @@ def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: 
         "threshold": threshold,
         "settings": model.settings.to_dict(),
         "manifest": str(dep.manifest_path.resolve()),
+        # Stretches of audio whose verdicts trained the model (`estimate` sets them aside).
+        "verified_spans": model.summary.get("verified", {}).get("spans", []),
     }
     cur = con.execute(
         "INSERT INTO runs (run_key, deployment_id, model_sha256, model_path, classes, target, threshold, "

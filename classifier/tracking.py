@@ -134,6 +134,13 @@ def log_training_run(
             "callsieve.model_sha256": model.content_sha256,
             "callsieve.deployments": ",".join(sorted({s["deployment"] for s in model.summary["sets"]})),
         }
+        verified = model.summary.get("verified")
+        if verified:
+            # Retraining from verdicts: the parent model and the samples whose verdicts fed it.
+            tags["callsieve.parent_models"] = ",".join(verified["parent_models"])
+            tags["callsieve.verification_runs"] = ",".join(verified["runs"])
+            tags["callsieve.verification_samples"] = ",".join(verified["samples"])
+            tags["callsieve.verified_stretches"] = str(verified["stretches"])
         for name, counts in model.summary["examples_per_set"].items():
             tags[f"callsieve.examples.{Path(name).name}"] = json.dumps(counts)
         mlflow.set_tags(tags)

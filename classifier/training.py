@@ -233,12 +233,21 @@ def collect_examples(
             end = np.concatenate([t.end_s for t in tables])
             n_described += values.shape[0]
             seconds += rec.duration_s
-            label, _ = _assign(start, end, by_file[name], config.min_overlap, keep_classes)
+            notes = by_file[name]
+            label, clear = _assign(start, end, notes, config.min_overlap, keep_classes)
             group = _group_keys(dep, rec, start)
+            verified_no = np.zeros(label.size, dtype=bool)
+            if all(a.partial for a in notes):
+                # Only the verified stretches of this file are known: windows clear of them
+                # are not background, and a stretch verified as no call is a hard negative.
+                verified_no = (label == BACKGROUND) & ~clear
+                label[clear] = ""
             pos = (label != "") & (label != BACKGROUND) & (label != LABELLED_OTHER)
-            # Calls of other labels, in a model of one target: background examples that are
-            # always kept (hard negatives an analyst named), never left to the draw below.
-            other = label == LABELLED_OTHER
+            # Calls of other labels, in a model of one target, and stretches verified as no
+            # call: background examples that are always kept (hard negatives an analyst
+            # named), never left to the draw below.
+            other = (label == LABELLED_OTHER) | verified_no
+            label[verified_no] = ""
             pos_X += [values[pos], values[other]]
             pos_y += [label[pos], np.full(int(other.sum()), BACKGROUND, dtype=object)]
             pos_g += [group[pos], group[other]]
@@ -555,6 +564,44 @@ def _pair_tables(label_paths: list[Path], deployments: list[Deployment]) -> list
     return sets
 
 
+def verified_provenance(sets: list[LabelledSet]) -> dict[str, Any]:
+    """What the partial (verified) rows of the training tables came from.
+
+    Returns
+    -------
+    dict
+        ``stretches`` (count), ``spans`` (deployment, file, start_s, end_s of every partial
+        row), and from the columns `review export-labels` writes: ``runs``, ``parent_models``
+        (model hashes) and ``samples`` (verification samples) that gave them.
+    """
+    import csv
+    import io
+
+    from .labels import read_table_text
+
+    spans = [
+        {"deployment": a.deployment, "file": a.file, "start_s": a.start_s, "end_s": a.end_s}
+        for s in sets
+        for a in s.annotations
+        if a.partial
+    ]
+    runs: set[str] = set()
+    models: set[str] = set()
+    samples: set[str] = set()
+    for path in sorted({s.name for s in sets if any(a.partial for a in s.annotations)}):
+        for row in csv.DictReader(io.StringIO(read_table_text(path))):
+            for key, into in (("run_id", runs), ("model_sha256", models), ("sample_id", samples)):
+                if (row.get(key) or "").strip():
+                    into.add(row[key].strip())
+    return {
+        "stretches": len(spans),
+        "spans": spans,
+        "runs": sorted(runs),
+        "parent_models": sorted(models),
+        "samples": sorted(samples),
+    }
+
+
 #: Fewest labelled calls of a class, and fewest cross-validation groups, below which the
 #: figures of a training run are too uncertain to trust (common practice: a few dozen
 #: examples per class for a tree model; two groups per fold).
@@ -649,6 +696,11 @@ def train(
     if not sets:
         raise InputError("no label table row falls in the deployments given")
     result = train_model(sets, config, target, progress)
+    verified = verified_provenance(sets)
+    if verified["stretches"]:
+        # Recorded in the model, so that scoring runs carry it and `estimate` can set aside
+        # verdicts on audio this model learned from.
+        result.model.summary["verified"] = verified
     out = Path(out)
     digest = save_model(result.model, out)
     report: dict[str, Any] = {
@@ -665,6 +717,8 @@ def train(
         "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
         "threads": result.threads,
     }
+    if verified["stretches"]:
+        report["verified"] = {k: v for k, v in verified.items() if k != "spans"}
     if track:
         from .tracking import log_training_run
 

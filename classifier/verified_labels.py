@@ -34,6 +34,8 @@ VERIFIED_LABEL_COLUMNS = [
     "partial",
     "detection_id",
     "run_id",
+    "model_sha256",
+    "sample_id",
     "verdict",
     "reviewers",
 ]
@@ -60,7 +62,9 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
     rows = []
     for det_id, vs in sorted(votes.items()):
         d = con.execute(
-            "SELECT d.*, f.name AS file, dep.name AS deployment FROM detections d JOIN files f USING (file_id) "
+            "SELECT d.*, f.name AS file, dep.name AS deployment, r.model_sha256, "
+            "(SELECT MAX(i.sample_id) FROM review_items i WHERE i.detection_id=d.detection_id) AS sample_id "
+            "FROM detections d JOIN files f USING (file_id) JOIN runs r ON r.run_id=d.run_id "
             "JOIN deployments dep ON dep.deployment_id=f.deployment_id WHERE d.detection_id=?",
             (det_id,),
         ).fetchone()
@@ -92,6 +96,8 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
                 "partial": 1,
                 "detection_id": det_id,
                 "run_id": run_id,
+                "model_sha256": d["model_sha256"],
+                "sample_id": d["sample_id"] if d["sample_id"] is not None else "",
                 "verdict": verdict,
                 "reviewers": ";".join(sorted({rv for _, _, rv in vs})),
             }

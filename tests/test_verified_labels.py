@@ -63,3 +63,92 @@ def test_export_labels_never_replaces_the_store(judged, capsys):
     assert main(["review", "export-labels", str(db), "--out", str(db)]) == 2
     assert db.read_bytes() == before
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+def test_partial_rows_teach_their_own_stretches_and_nothing_else(labelled, sweep_model):
+    """docs/formats.md §3, "Partial tables": in a file with only partial rows, windows on a
+    verified call are examples of it, windows on a stretch verified as no call are kept
+    background examples, and the rest of the file is not background."""
+    from callsieve.classifier.config import load_training_config
+    from callsieve.classifier.deployment import load_deployment
+    from callsieve.classifier.labels import Annotation
+    from callsieve.classifier.model import load_model
+    from callsieve.classifier.training import LabelledSet, collect_examples
+
+    manifest, labels, config_path = labelled
+    dep = load_deployment(manifest)
+    with open(labels) as fh:
+        rows = [r for r in csv.DictReader(fh) if r["file"] == dep.files[0].name]
+    up = next(r for r in rows if r["label"] == "up")
+    call = Annotation(dep.name, up["file"], float(up["start_s"]), float(up["end_s"]), "up", None, None, 2, True)
+    # A stretch between two calls, verified as holding none.
+    gap = sorted(float(r["start_s"]) for r in rows)
+    quiet = next((a + 2.5, b - 2.5) for a, b in zip(gap, gap[1:], strict=False) if b - a > 8.5)
+    no = Annotation(dep.name, up["file"], quiet[0], quiet[1], BACKGROUND, None, None, 3, True)
+    settings = load_model(sweep_model).settings
+    config = load_training_config(config_path)
+    ex = collect_examples([LabelledSet(dep, [call, no], "verified.csv")], settings, config)
+    hop, window = settings.window_hop_s, settings.window_s
+    # Windows overlapping the 'no' stretch by the minimum overlap: a handful, all kept.
+    n_bg = int((ex.y == BACKGROUND).sum())
+    assert 1 <= n_bg <= (quiet[1] - quiet[0] + window) / hop + 1
+    assert 1 <= int((ex.y == "up").sum()) <= (float(up["end_s"]) - float(up["start_s"]) + window) / hop + 1
+    # A complete table naming the same file makes its whole unlabelled time background.
+    full = Annotation(dep.name, up["file"], call.start_s, call.end_s, "up", None, None, 2, False)
+    ex_full = collect_examples([LabelledSet(dep, [full], "complete.csv")], settings, config)
+    assert ex_full.windows_described == ex.windows_described
+    assert int((ex_full.y == BACKGROUND).sum()) > n_bg
+
+
+def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(judged, labelled, tmp_path, capsys):
+    """export-labels -> train with the original table plus the verified one -> score: the
+    model and the run name the verified stretches, and a sample of the new run does not count
+    verdicts on them."""
+    import json
+
+    from callsieve.classifier.estimate import estimate_run
+    from callsieve.classifier.model import load_model
+    from callsieve.classifier.scoring import score_deployment
+    from callsieve.classifier.training import train
+
+    db, ids = judged
+    manifest, labels, config_path = labelled
+    verified = tmp_path / "verified.csv"
+    assert main(["review", "export-labels", str(db), "--out", str(verified), "--quiet"]) == 0
+    model = tmp_path / "retrained.skops"
+    report = train([manifest], [labels, verified], model, config_path=config_path, track=False)
+    assert report["verified"]["stretches"] == 4 and report["verified"]["runs"] == ["1"]
+    assert load_model(model).summary["verified"]["parent_models"]  # the parent model's hash
+    summary = score_deployment(model, manifest, db)
+    assert summary["run_id"] == 2
+    con = open_store(db, create=False)
+    params = json.loads(con.execute("SELECT parameters FROM runs WHERE run_id=2").fetchone()[0])
+    assert len(params["verified_spans"]) == 4
+    # A sample of the new run holding a detection on a verified stretch, with a verdict.
+    span = params["verified_spans"][0]
+    det = con.execute(
+        "SELECT d.detection_id, d.confidence FROM detections d JOIN files f USING (file_id) WHERE d.run_id=2 "
+        "AND f.name=? AND d.start_s<? AND d.end_s>? LIMIT 1",
+        (span["file"], span["end_s"], span["start_s"]),
+    ).fetchone()
+    assert det is not None
+    with Transaction(con):
+        sid = con.execute(
+            "INSERT INTO review_samples (run_id, label, design, seed, folder, created_utc) "
+            "VALUES (2, ?, '{}', 0, '.', ?)",
+            (con.execute("SELECT label FROM detections WHERE detection_id=?", (det[0],)).fetchone()[0], now_utc()),
+        ).lastrowid
+        con.execute("INSERT INTO review_strata VALUES (?, 1, 0.0, 1.0, 10, 1)", (sid,))
+        con.execute(
+            "INSERT INTO review_items (sample_id, detection_id, stratum, inclusion_probability, draw_order) "
+            "VALUES (?, ?, 1, 0.1, 1)",
+            (sid, det[0]),
+        )
+        con.execute(
+            "INSERT INTO verdicts (detection_id, reviewer, verdict, recorded_utc) VALUES (?, 'rev-a', 'yes', ?)",
+            (det[0], now_utc()),
+        )
+    con.close()
+    r = estimate_run(db, run_id=2)
+    assert r["trained_on_verified"]["verdicts_set_aside"] == 1
+    assert r["verdicts"]["yes"] == 0
