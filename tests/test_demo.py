@@ -50,10 +50,11 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     import sqlite3
 
     con = sqlite3.connect(out / "detections.db")
-    items = con.execute("SELECT COUNT(*) FROM review_items").fetchone()[0]
+    # Sample 1 is of the first run (sample 2, of the retrained model's run, comes later).
+    items = con.execute("SELECT COUNT(*) FROM review_items WHERE sample_id=1").fetchone()[0]
     answered = con.execute(
         "SELECT COUNT(*) FROM verdicts v JOIN review_items ri USING (detection_id) "
-        "WHERE v.reviewer='simulated-reviewer'"
+        "WHERE v.reviewer='simulated-reviewer' AND ri.sample_id=1"
     ).fetchone()[0]
     con.close()
     assert items > 0 and answered == items
@@ -61,6 +62,9 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     assert len(sample) == items and all((out / "review" / r["image"]).exists() for r in sample)
     # The estimate from those verdicts is printed beside the truth, and the report is written.
     assert "Estimates from the verified sample" in page and "Monitoring report" in page
+    # One round of retraining from the verdicts: a second model and a second run of the survey.
+    assert "Retraining from the verdicts" in page and (out / "models" / "demo-model-verified.skops").exists()
+    assert (out / "review" / "verified-labels.csv").exists()
     report = json.loads((out / "report" / "report.json").read_text())
     assert report["run_id"] == 1 and (out / "report" / "report.html").is_file()
     assert (out / "report" / "soundscape.npz").is_file()
@@ -72,8 +76,12 @@ def scenario_run_id(out):
 
     mlflow.set_tracking_uri(f"sqlite:///{out / 'mlflow.db'}")
     runs = mlflow.search_runs(search_all_experiments=True, output_format="list")
-    assert len(runs) == 1
-    return runs[0].info.run_id
+    # The first training run, and the retraining from verdicts, which names it as parent.
+    first = [r for r in runs if "callsieve.parent_models" not in r.data.tags]
+    retrained = [r for r in runs if "callsieve.parent_models" in r.data.tags]
+    assert len(first) == 1 and len(retrained) == 1
+    assert retrained[0].data.tags["callsieve.parent_models"] == first[0].data.tags["callsieve.model_sha256"]
+    return first[0].info.run_id
 
 
 def test_demo_refuses_a_foreign_folder(tmp_path, capsys):
