@@ -135,7 +135,13 @@ class MinuteSpectra:
         self._segment = int(round(sample_rate_hz * SEGMENT_S))
         self._next = self.first  # first own sample not yet used
         self._pending = np.empty(0, dtype=np.float32)
-        self._bands: list[np.ndarray] = []
+        self._done = 0  # whole segments taken so far
+        # Sums per time bin, allocated for the whole file: memory does not grow with
+        # what is read (a 12-hour file at 2 kHz: 720 bins).
+        self._per_bin = int(round(BIN_S / SEGMENT_S))
+        n_bins = max(-(-int(frames) // (self._segment * self._per_bin)), 1)
+        self._sums = np.zeros((n_bins, self.edges.size - 1))
+        self._counts = np.zeros(n_bins)
 
     def add(self, start: int, samples: np.ndarray) -> None:
         """Take the samples ``samples`` that begin at stream sample ``start``."""
@@ -149,24 +155,21 @@ class MinuteSpectra:
         whole = (data.size // self._segment) * self._segment
         if whole:
             f, psd = segment_psd(data[:whole], self.sample_rate_hz, self.chain)
-            self._bands.append(band_means(psd, f, self.edges))
+            bands = band_means(psd, f, self.edges)
+            bin_of = (self._done + np.arange(bands.shape[0])) // self._per_bin
+            np.add.at(self._sums, bin_of, bands)
+            np.add.at(self._counts, bin_of, 1.0)
+            self._done += bands.shape[0]
         self._pending = np.array(data[whole:], dtype=np.float32)
 
-    def result(self, bin_s: float = BIN_S) -> tuple[np.ndarray, np.ndarray]:
-        """Seconds of audio in each time bin and the mean PSD per bin and band.
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        """Seconds of audio in each time bin of ``BIN_S`` and the mean PSD per bin and band.
 
         Returns
         -------
         seconds : np.ndarray [shape=(n_bins,)], s
         psd : np.ndarray [shape=(n_bins, n_bands)], µPa²/Hz (NaN where a band holds no bin)
         """
-        if not self._bands:
-            return np.empty(0), np.empty((0, self.edges.size - 1))
-        seg = np.concatenate(self._bands)
-        per_bin = int(round(bin_s / SEGMENT_S))
-        n_bins = -(-seg.shape[0] // per_bin)
-        bin_of = np.arange(seg.shape[0]) // per_bin
-        counts = np.bincount(bin_of, minlength=n_bins).astype(float)
-        sums = np.zeros((n_bins, seg.shape[1]))
-        np.add.at(sums, bin_of, seg)
-        return counts * SEGMENT_S, sums / counts[:, None]
+        n_bins = -(-self._done // self._per_bin)
+        counts = self._counts[:n_bins]
+        return counts * SEGMENT_S, self._sums[:n_bins] / counts[:, None]
