@@ -216,8 +216,9 @@ def _retraining_step(
         summary["evaluation"]["classes"].get(label, {}).get("average_precision")
     )
     judged["after"]["average_precision_all_files"] = ev_all["classes"].get(label, {}).get("average_precision")
-    # A fresh sample of the new run (not rendered: the demo only needs its verdicts).
-    review = _review_step(out, db, summary, seed + 1, folder=out / "review-after", render=False)
+    # A fresh sample of the new run, rendered like the first: `review serve` opens the
+    # latest sample of a store, and a reviewer must be able to look at it.
+    review = _review_step(out, db, summary, seed + 1, folder=out / "review-after")
     if "sample" in review:
         judged["after"]["estimate"] = _estimate_step(db, rescored["run_id"], summary)
     return {
