@@ -370,7 +370,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout")
     p.set_defaults(func=_cmd_estimate)
 
+    from .budget import add_budget_verb
     from .report import add_report_verb
+
+    add_budget_verb(verbs, common)
 
     add_report_verb(verbs, common)
     from .review_cli import add_review_verbs
