@@ -91,3 +91,51 @@ def test_budget_refuses_a_frequency_above_nyquist(labelled, capsys):
     code = main(["budget", str(labelled[0]), "--source-level", "170", "--frequency", "5000"])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2 and len(err) == 1 and "at most 1000 Hz" in err[0]
+
+
+# --- the detection function and the effective area ---
+
+
+def test_effective_area_of_a_step_and_a_half_normal_detection_function():
+    """Buckland et al. (2001): a step P = 1 to R gives πR²; a half-normal exp(-r²/2σ²) gives
+    2πσ² (effective radius σ√2); the integration error must stay within 0.5 %."""
+    from callsieve.classifier.budget import effective_area_m2
+
+    r = np.geomspace(1.0, 2e5, 600)
+    r = np.union1d(r, [5000.0])  # the step's edge on the grid
+    assert effective_area_m2(r, (r <= 5000.0).astype(float)) == pytest.approx(math.pi * 5000.0**2, rel=0.005)
+    sigma = 3000.0
+    area = effective_area_m2(r, np.exp(-(r**2) / (2 * sigma**2)))
+    assert area == pytest.approx(2 * math.pi * sigma**2, rel=0.005)
+    assert math.sqrt(area / math.pi) == pytest.approx(sigma * math.sqrt(2), rel=0.005)
+
+
+def test_a_step_recall_gives_the_normal_chance_that_the_call_clears_the_noise():
+    """With recall a step at 0 dB SNR and one noise level, P(detect | r) is the chance that a
+    normal source level exceeds TL(r) + NL: Φ((SL - TL - NL)/σ) (the sonar equation)."""
+    from callsieve.classifier.budget import detection_function
+    from scipy.stats import norm
+
+    r = np.array([10.0, 1000.0, 3000.0, 10000.0, 30000.0])
+    loss = 20 * np.log10(r)
+    p = detection_function(r, 160.0, 6.0, loss, np.array([90.0]), np.array([-0.01, 0.01]), np.array([0.0, 1.0]))
+    assert p == pytest.approx(norm.cdf((160.0 - loss - 90.0) / 6.0), abs=0.01)
+    assert np.all(np.diff(p) <= 1e-12)  # never more likely farther away
+
+
+def test_budget_with_a_run_gives_its_detection_function(labelled, reference, tmp_path, capsys):
+    db, _ = reference
+    out = tmp_path / "ev"
+    assert main(["evaluate", str(db), "--truth", str(labelled[1]), "--out", str(out), "--quiet"]) == 0
+    capsys.readouterr()
+    argv = ["budget", str(labelled[0]), "--source-level", "160", "--frequency", "120", "--db", str(db)]
+    argv += ["--evaluation", str(out), "--label", "up", "--figure", str(tmp_path / "p.png"), "--json"]
+    assert main(argv) == 0
+    d = json.loads(capsys.readouterr().out)["detection"]
+    assert d["label"] == "up" and d["noise_minutes"] == 24  # 6 files of 4 one-minute bins
+    p = [row["p"] for row in d["ranges"]]
+    assert all(b <= a + 1e-9 for a, b in zip(p, p[1:], strict=False))
+    assert all(row["p_low"] <= row["p"] <= row["p_high"] for row in d["ranges"])
+    assert d["effective_area_km2_low"] <= d["effective_area_km2"] <= d["effective_area_km2_high"]
+    assert (tmp_path / "p.png").stat().st_size > 1000
+    assert main(["budget", str(labelled[0]), "--source-level", "160", "--frequency", "120", "--db", str(db)]) == 2
