@@ -589,6 +589,7 @@ def _score_deployment(
 
     n = 0
     pending = todo
+    waiting = ""
     try:
         while pending:
             for result in _results(model, dep, claimed(pending), threshold, jobs, scheduler, block_s, pool):
@@ -610,10 +611,13 @@ def _score_deployment(
             pending = [f for f in todo if file_ids[f.name] not in fresh]
             if pending:
                 holders = claim_holders(con, run_id, owner)
-                say(
+                line = (
                     f"waiting for {len(pending)} file(s) that {', '.join(holders) or 'another process'} "
                     "is scoring in this store"
                 )
+                if line != waiting:  # once per change, not once per poll
+                    say(line)
+                    waiting = line
                 time.sleep(_CLAIM_POLL_S)
     finally:
         try:
