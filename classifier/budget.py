@@ -258,7 +258,7 @@ def budget_chain(
     if quant and site:
         margin = site["psd_db"] - quant["psd_db"]
         floor = (
-            f"the sea sets the floor: its noise at {frequency_hz:g} Hz is {margin:.1f} dB above the converter's"
+            f"the sea sets the floor: its noise at {frequency_hz:.0f} Hz is {margin:.1f} dB above the converter's"
             if margin > 6.0
             else f"the recorder sets the floor: the converter's noise is within {margin:.1f} dB of the sea's"
         )

@@ -155,8 +155,55 @@ def run_demo(
     say(f"demo: writing the monitoring report of run {scored['run_id']} into {out / 'report'}")
     summary["report"] = build_report(db, out / "report", run_id=scored["run_id"]) | {"out": str(out / "report")}
     summary["seconds"]["report"] = round(time.perf_counter() - t7, 1)
+
+    # The detection range: the level chain of the target's call through the survey
+    # recorder, and its detection function from the evaluation (the scenario's source levels).
+    t9 = time.perf_counter()
+    say("demo: the level chain and detection function of the target at the survey site")
+    summary["budget"] = _budget_step(out, db, summary, scored["run_id"])
+    summary["seconds"]["budget"] = round(time.perf_counter() - t9, 1)
     summary["seconds"]["total"] = round(time.perf_counter() - t0, 1)
     return summary
+
+
+def _budget_step(out: Path, db: Path, summary: dict[str, Any], run_id: int) -> dict[str, Any]:
+    """`budget` for the target at the survey site, with the scenario's source levels."""
+    import csv
+
+    import numpy as np
+
+    from .budget import budget_chain, budget_detection, detection_figure
+    from .errors import InputError
+    from .plots import save
+
+    survey = next(site["name"] for site in summary["sites"] if site["role"] == "survey")
+    with open(summary["calls_table"], newline="", encoding="utf-8") as fh:
+        calls = [r for r in csv.DictReader(fh) if r["label"] == summary["target_label"] and r["deployment"] == survey]
+    level = np.array([float(r["source_level_db"]) for r in calls])
+    low = float(np.median([float(r["low_hz"]) for r in calls]))
+    high = float(np.median([float(r["high_hz"]) for r in calls]))
+    centre = float(np.sqrt(low * high))
+    sl, sd = round(float(level.mean()), 1), round(float(level.std()), 1)
+    result = budget_chain(summary["survey_manifest"], sl, centre)
+    try:
+        detection = budget_detection(
+            summary["survey_manifest"],
+            db,
+            run_id,
+            out / "evaluation",
+            sl,
+            sd,
+            centre,
+            label=summary["target_label"],
+            band=(low, high),
+        )
+    except InputError as exc:  # too few evaluated calls in a short demo
+        result["detection_skipped"] = str(exc)
+        return result
+    save(detection_figure(detection), out / "evaluation" / "detection-function.png")
+    result["detection"] = detection
+    result["detection"]["figure"] = str(out / "evaluation" / "detection-function.png")
+    return result
 
 
 def _retraining_step(
@@ -453,6 +500,26 @@ def format_demo_summary(summary: dict[str, Any]) -> str:
         lines += ["", *_estimate_lines(summary["estimate"])]
     if "retraining" in summary:
         lines += ["", *_retraining_lines(summary)]
+    if "budget" in summary:
+        b = summary["budget"]
+        lines += ["", "Detection range (callsieve budget)"]
+        c = b["clip_range_m"]
+        lines.append(
+            f"  a {summary['target_label']} call of {b['source_level_db']:g} dB re 1 µPa·m (rms) at "
+            f"{b['frequency_hz']:.0f} Hz clips the survey recorder "
+            + ("nowhere beyond 1 m" if c == 0 else "at every range" if c is None else f"inside {c:,.0f} m")
+            + f"; {b['noise_floor']}"
+        )
+        d = b.get("detection")
+        if d:
+            p = {row["range_m"]: row["p"] for row in d["ranges"]}
+            lines.append(
+                f"  P(detect) {p[1000.0]:.2f} at 1 km, {p[10000.0]:.2f} at 10 km, {p[50000.0]:.2f} at 50 km; effective "
+                f"radius {d['effective_radius_m']:,.0f} m ({d['effective_radius_m_low']:,.0f}-"
+                f"{d['effective_radius_m_high']:,.0f}); figure {d['figure']}"
+            )
+        else:
+            lines.append(f"  no detection function: {b.get('detection_skipped')}")
     if "report" in summary:
         from .report import format_report
 

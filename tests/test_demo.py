@@ -65,6 +65,8 @@ def test_demo_writes_scenario_and_reports(tmp_path, capsys):
     # One round of retraining from the verdicts: a second model and a second run of the survey.
     assert "Retraining from the verdicts" in page and (out / "models" / "demo-model-verified.skops").exists()
     assert (out / "review" / "verified-labels.csv").exists()
+    # The detection range of the target at the survey site (callsieve budget).
+    assert "Detection range (callsieve budget)" in page and "clips the survey recorder" in page
     report = json.loads((out / "report" / "report.json").read_text())
     assert report["run_id"] == 1 and (out / "report" / "report.html").is_file()
     assert (out / "report" / "soundscape.npz").is_file()
