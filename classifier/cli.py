@@ -205,12 +205,11 @@ def _cmd_estimate(args: argparse.Namespace) -> int:
         audit=args.audit,
     )
     if out is not None:
+        from .outputs import write_text
         from .plots import confidence_calibration_figure, save, verified_precision_figure
 
         out.mkdir(parents=True, exist_ok=True)
-        tmp = out / "estimate.json.partial"
-        tmp.write_text(json.dumps(result, indent=2, ensure_ascii=False) + "\n")
-        tmp.replace(out / "estimate.json")
+        write_text(out / "estimate.json", json.dumps(result, indent=2, ensure_ascii=False) + "\n")
         save(
             verified_precision_figure(result["thresholds"], result["label"], args.target_precision),
             out / "precision-by-threshold.png",

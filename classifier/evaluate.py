@@ -39,6 +39,7 @@ from .evaluation import (
 )
 from .export import CAUTION
 from .labels import BACKGROUND, read_label_table
+from .outputs import write_csv, write_text
 from .plots import (
     confusion_figure,
     precision_recall_figure,
@@ -537,12 +538,10 @@ def _confusion(dets, operating, t_file, t_label, t_start, t_end, tolerance_s, cl
 
 
 def _write_csv(path: Path, rows: list[dict[str, Any]]) -> None:
-    with open(path, "w", newline="") as fh:
-        if not rows:
-            return
-        w = csv.DictWriter(fh, fieldnames=list(rows[0]))
-        w.writeheader()
-        w.writerows(rows)
+    if rows:
+        write_csv(path, list(rows[0]), rows)
+    else:
+        write_text(path, "")
 
 
 def _write_matches(path: Path, dets: dict[str, Any], match: np.ndarray, truth: list) -> None:

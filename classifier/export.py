@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import csv
 from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
 from .errors import InputError
-from .outputs import check_output
+from .outputs import check_output, csv_header_is, write_csv
 from .store import latest_run_id, open_store
 
 __all__ = ["DETECTION_COLUMNS", "export_detections", "CAUTION"]
@@ -81,11 +80,7 @@ def _earlier_export(path: Path) -> bool:
         except Exception:
             return False
         return meta.get(b"caution") == CAUTION.encode()
-    try:
-        with open(path, encoding="utf-8", newline="") as fh:
-            return next(csv.reader(fh), None) == DETECTION_COLUMNS
-    except (OSError, UnicodeDecodeError):
-        return False
+    return csv_header_is(path, DETECTION_COLUMNS)
 
 
 def export_detections(
@@ -129,10 +124,10 @@ def export_detections(
                 f"--label {label!r}: run {run_id} has no detection of that class "
                 f"(its classes: {', '.join(sorted(known)) or 'none'})"
             )
-    tmp = out.with_name(out.name + ".partial")
     n = 0
     rows = _rows(con, run_id, label, min_confidence)
     if out.suffix.lower() == ".parquet":
+        tmp = out.with_name(out.name + ".partial")
         try:
             import pyarrow as pa
             import pyarrow.parquet as pq
@@ -173,13 +168,8 @@ def export_detections(
                     pa.Table.from_pylist([dict(zip(DETECTION_COLUMNS, b, strict=True)) for b in batch], schema)
                 )
                 n += len(batch)
+        tmp.replace(out)
     else:
-        with open(tmp, "w", newline="") as fh:
-            w = csv.writer(fh)
-            w.writerow(DETECTION_COLUMNS)
-            for r in rows:
-                w.writerow(r)
-                n += 1
-    tmp.replace(out)
+        n = write_csv(out, DETECTION_COLUMNS, rows)
     con.close()
     return {"run_id": run_id, "rows": n, "out": str(out)}

@@ -7,12 +7,14 @@ earlier output of its own kind), and everything else is refused unless ``--force
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import csv
+from collections.abc import Callable, Iterable, Sequence
 from pathlib import Path
+from typing import Any
 
 from .errors import InputError
 
-__all__ = ["check_output", "is_sqlite_file", "is_zip_file"]
+__all__ = ["check_output", "is_sqlite_file", "is_zip_file", "csv_header_is", "write_csv", "write_text"]
 
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 _ZIP_MAGIC = b"PK\x03\x04"
@@ -86,3 +88,42 @@ def check_output(
     else:
         kind = "a file this command did not write"
     raise InputError(f"{path}: exists and is {kind}; choose another {option}, or add --force to replace it")
+
+
+def csv_header_is(path: Path, columns: Sequence[str]) -> bool:
+    """True when ``path`` is a CSV whose first line names exactly ``columns``: an earlier
+    table of the writer that uses these columns, which it may replace."""
+    try:
+        with open(path, encoding="utf-8", newline="") as fh:
+            return next(csv.reader(fh), None) == list(columns)
+    except (OSError, UnicodeDecodeError, csv.Error):
+        return False
+
+
+def write_text(path: Path, text: str) -> Path:
+    """Write ``text`` (UTF-8) under a temporary name and rename it: a reader never sees half."""
+    path = Path(path)
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(path)
+    return path
+
+
+def write_csv(path: Path, columns: Sequence[str], rows: Iterable[dict[str, Any] | Sequence[Any]]) -> int:
+    """Write a CSV table under a temporary name and rename it; return the rows written.
+
+    Rows are dicts (keys beyond ``columns`` ignored) or sequences in column order; None
+    becomes an empty cell.
+    """
+    path = Path(path)
+    tmp = path.with_name(path.name + ".partial")
+    n = 0
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(columns)
+        for r in rows:
+            values = [r.get(c) for c in columns] if isinstance(r, dict) else list(r)
+            w.writerow(["" if v is None else v for v in values])
+            n += 1
+    tmp.replace(path)
+    return n

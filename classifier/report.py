@@ -9,7 +9,6 @@ presence arithmetic is pure functions over arrays of times (s since the epoch, U
 from __future__ import annotations
 
 import argparse
-import csv
 import json
 import math
 import sqlite3
@@ -25,6 +24,7 @@ import numpy as np
 from .errors import InputError, read_toml
 from .export import CAUTION
 from .labels import BACKGROUND
+from .outputs import write_csv, write_text
 from .store import latest_run_id, open_store
 
 __all__ = [
@@ -605,13 +605,10 @@ def soundscape_from_store(
 def _write_table(rows: list[dict], path: Path, parquet: bool = True) -> list[Path]:
     """``path`` as CSV (empty cells for missing values) and, with ``parquet``, beside it as Parquet."""
     written = []
-    tmp = path.with_name(path.name + ".partial")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        if rows:
-            w = csv.DictWriter(fh, fieldnames=list(rows[0]))
-            w.writeheader()
-            w.writerows({k: ("" if v is None else v) for k, v in r.items()} for r in rows)
-    tmp.replace(path)
+    if rows:
+        write_csv(path, list(rows[0]), rows)
+    else:
+        write_text(path, "")
     written.append(path)
     if parquet and rows:
         import pyarrow as pa
@@ -762,9 +759,7 @@ def build_report(
         )
         report["outputs"] = sorted(set(report["outputs"]) | {f["path"].name for f in figs} | {"report.html"})
         write_html(out / "report.html", report, figs)
-    tmp = out / "report.json.partial"
-    tmp.write_text(json.dumps(report, indent=2, ensure_ascii=False) + "\n")
-    tmp.replace(out / "report.json")
+    write_text(out / "report.json", json.dumps(report, indent=2, ensure_ascii=False) + "\n")
     return report
 
 

@@ -12,6 +12,8 @@ import html
 from pathlib import Path
 from typing import Any
 
+from .outputs import write_text
+
 __all__ = ["report_page", "write_html"]
 
 _CSS = """
@@ -114,8 +116,4 @@ def report_page(report: dict[str, Any], figures: list[dict]) -> str:
 
 def write_html(path: str | Path, report: dict[str, Any], figures: list[dict]) -> Path:
     """Write ``report_page`` to ``path`` (replaced whole, never half-written)."""
-    path = Path(path)
-    tmp = path.with_name(path.name + ".partial")
-    tmp.write_text(report_page(report, figures), encoding="utf-8")
-    tmp.replace(path)
-    return path
+    return write_text(Path(path), report_page(report, figures))

@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError
-from .outputs import check_output
+from .outputs import check_output, csv_header_is, write_csv, write_text
 from .store import Transaction, latest_run_id, now_utc, open_store
 
 __all__ = [
@@ -382,9 +382,7 @@ def _folder_sample(folder: Path, store: Path) -> tuple[bool, int | None]:
 
 def _write_marker(folder: Path, store: Path, sample_id: int | None, design: dict) -> None:
     doc = {"kind": _MARKER_KIND, "store": str(store.resolve()), "sample_id": sample_id, "design": design}
-    tmp = folder / (MARKER + ".partial")
-    tmp.write_text(json.dumps(doc, indent=2), encoding="utf-8")
-    tmp.replace(folder / MARKER)
+    write_text(folder / MARKER, json.dumps(doc, indent=2))
 
 
 def _verdicts_on_sample(con: sqlite3.Connection, sample_id: int) -> int:
@@ -1235,15 +1233,6 @@ SEGMENT_COLUMNS = [
 ]
 
 
-def _write_csv(path: Path, columns: list[str], rows: list[dict]) -> None:
-    tmp = path.with_name(path.name + ".partial")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, columns, extrasaction="ignore")
-        w.writeheader()
-        w.writerows(rows)
-    tmp.replace(path)
-
-
 def _sample_rows(con: sqlite3.Connection, sample_id: int, blind: bool) -> list[dict]:
     rows = con.execute(
         "SELECT ri.*, s.low AS stratum_low, s.high AS stratum_high, d.start_s, d.end_s, d.low_hz, d.high_hz, d.label, "
@@ -1284,7 +1273,7 @@ def _finish(
     blind = bool(row["blind"])
     rows = _sample_rows(con, sample_id, blind)
     columns = [c for c in SAMPLE_COLUMNS if not (blind and c in BLIND_HIDDEN)]
-    _write_csv(folder / "sample.csv", columns, rows)
+    write_csv(folder / "sample.csv", columns, rows)
     seg_rows = [
         dict(r) | {"start_utc": _iso(_parse_utc(r["file_start_utc"]) + timedelta(seconds=r["start_s"]))}
         for r in con.execute(
@@ -1296,7 +1285,7 @@ def _finish(
         )
     ]
     if seg_rows or design.get("segments"):
-        _write_csv(folder / "segments.csv", SEGMENT_COLUMNS, seg_rows)
+        write_csv(folder / "segments.csv", SEGMENT_COLUMNS, seg_rows)
     strata = [dict(r) for r in con.execute("SELECT * FROM review_strata WHERE sample_id=? ORDER BY low", (sample_id,))]
     say(f"review: sample {sample_id} written to {folder}")
     return {
@@ -1582,14 +1571,6 @@ def import_verdicts(db: str | Path, verdicts_csv: str | Path) -> dict[str, Any]:
         con.close()
 
 
-def _earlier_verdict_export(path: Path) -> bool:
-    try:
-        with open(path, encoding="utf-8", newline="") as fh:
-            return next(csv.reader(fh), None) == VERDICT_EXPORT_COLUMNS
-    except (OSError, UnicodeDecodeError, csv.Error):
-        return False
-
-
 def export_verdicts(db: str | Path, out: str | Path, force: bool = False) -> dict[str, Any]:
     """Write every verdict of the store as CSV (docs/review.md), by detection and reviewer.
 
@@ -1608,7 +1589,7 @@ def export_verdicts(db: str | Path, out: str | Path, force: bool = False) -> dic
         option="--out",
         suffixes=(".csv",),
         inputs=(db,),
-        ours=_earlier_verdict_export,
+        ours=lambda path: csv_header_is(path, VERDICT_EXPORT_COLUMNS),
         what="a verdict table",
         force=force,
     )
@@ -1625,11 +1606,5 @@ def export_verdicts(db: str | Path, out: str | Path, force: bool = False) -> dic
         ).fetchall()
     finally:
         con.close()
-    tmp = out.with_name(out.name + ".partial")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(VERDICT_EXPORT_COLUMNS)
-        for r in rows:
-            w.writerow(["" if v is None else v for v in tuple(r)])
-    tmp.replace(out)
+    write_csv(out, VERDICT_EXPORT_COLUMNS, (tuple(r) for r in rows))
     return {"rows": len(rows), "superseded": sum(int(r["superseded"]) for r in rows), "out": str(out)}

@@ -8,7 +8,6 @@ background (docs/formats.md §3, "Partial tables").
 from __future__ import annotations
 
 import argparse
-import csv
 import re
 import sqlite3
 import sys
@@ -18,7 +17,7 @@ from typing import Any
 from .errors import InputError
 from .estimate import consensus
 from .labels import BACKGROUND
-from .outputs import check_output
+from .outputs import check_output, csv_header_is, write_csv
 from .store import latest_run_id, open_store
 
 __all__ = ["VERIFIED_LABEL_COLUMNS", "export_verified_labels", "verified_label_rows", "add_export_labels_verb"]
@@ -105,14 +104,6 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
     return rows, left_out
 
 
-def _earlier_table(path: Path) -> bool:
-    try:
-        with open(path, encoding="utf-8", newline="") as fh:
-            return next(csv.reader(fh), None) == VERIFIED_LABEL_COLUMNS
-    except (OSError, UnicodeDecodeError):
-        return False
-
-
 def export_verified_labels(
     db: str | Path, out: str | Path, run_id: int | None = None, force: bool = False
 ) -> dict[str, Any]:
@@ -129,7 +120,7 @@ def export_verified_labels(
         option="--out",
         suffixes=(".csv",),
         inputs=(db,),
-        ours=_earlier_table,
+        ours=lambda path: csv_header_is(path, VERIFIED_LABEL_COLUMNS),
         what="a verified label table",
         force=force,
     )
@@ -144,12 +135,7 @@ def export_verified_labels(
             f"run {run_id} has no verified detection to export (yes, no or another type); "
             "review a sample first ('callsieve review serve' or 'review import')"
         )
-    tmp = out.with_name(out.name + ".partial")
-    with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        w = csv.DictWriter(fh, fieldnames=VERIFIED_LABEL_COLUMNS)
-        w.writeheader()
-        w.writerows(rows)
-    tmp.replace(out)
+    write_csv(out, VERIFIED_LABEL_COLUMNS, rows)
     by_label: dict[str, int] = {}
     for r in rows:
         by_label[r["label"]] = by_label.get(r["label"], 0) + 1
