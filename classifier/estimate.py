@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import csv
 import json
-import re
 import sqlite3
 from datetime import UTC, datetime
 from pathlib import Path
@@ -21,6 +20,7 @@ from . import estimates as est
 from .errors import InputError
 from .evaluation import match_detections
 from .store import latest_run_id, open_store
+from .verdicts import consensus, verdict_on_label
 
 __all__ = ["estimate_run", "format_estimate", "consensus", "ESTIMATE_KEYS"]
 
@@ -48,16 +48,7 @@ ESTIMATE_KEYS = (
 # its detections, beyond the interval, raises the drift alarm (common practice: a
 # calibrated model's confidence should be within a few points of verified precision).
 DRIFT_MARGIN = 0.10
-_TYPE = re.compile(r"^\[type: ([^\]]+)\]")
 _BOOTSTRAP = 2000
-
-
-def consensus(votes: list[str]) -> str:
-    """One verdict from several reviewers' latest ones: the majority; a tie is unsure."""
-    counts = {v: votes.count(v) for v in ("yes", "no", "unsure")}
-    top = max(counts.values())
-    winners = [v for v, c in counts.items() if c == top]
-    return winners[0] if len(winners) == 1 else "unsure"
 
 
 def _sample(con: sqlite3.Connection, run_id: int, label: str | None, sample_id: int | None) -> sqlite3.Row:
@@ -96,11 +87,7 @@ def _item_verdicts(con: sqlite3.Connection, sample_id: int, label: str) -> dict[
         "ON i.detection_id=v.detection_id AND i.sample_id=?",
         (sample_id,),
     ):
-        verdict = r["verdict"]
-        m = _TYPE.match(r["note"] or "")
-        # "Another call type" heard: a false detection of this label whatever the button.
-        if m and m.group(1).strip() != label and verdict == "yes":
-            verdict = "no"
+        verdict, _ = verdict_on_label(r["verdict"], r["note"], label)
         items[r["detection_id"]]["votes"].append(verdict)
     for it in items.values():
         it["verdict"] = consensus(it["votes"]) if it["votes"] else None

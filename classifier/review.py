@@ -32,6 +32,7 @@ import numpy as np
 from .errors import InputError
 from .outputs import check_output, csv_header_is, write_csv, write_text
 from .store import Transaction, latest_run_id, now_utc, open_store
+from .verdicts import VERDICTS
 
 __all__ = [
     "ALLOCATIONS",
@@ -56,7 +57,6 @@ __all__ = [
 ]
 
 ALLOCATIONS = ("equal", "proportional", "neyman")
-VERDICTS = ("yes", "no", "unsure")
 # Two draws per stratum: the fewest that give a within-stratum variance (Cochran 1977, §5.3).
 MIN_PER_STRATUM = 2
 MARKER = "sample.json"

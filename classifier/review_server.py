@@ -43,6 +43,7 @@ from . import review_page
 from .agreement import cohen_kappa
 from .errors import InputError
 from .store import Transaction, now_utc, open_store
+from .verdicts import VERDICTS, compose_note, parse_note
 
 __all__ = [
     "VERDICTS",
@@ -57,14 +58,12 @@ __all__ = [
     "validate_reviewer",
 ]
 
-VERDICTS = ("yes", "no", "unsure")
 DEFAULT_PORT = 8765
 LEASE_S = 300.0  # an item opened by a reviewer is held for them this long (or until judged)
 MAX_NOTE_CHARS = 2000
 MAX_BODY_BYTES = 16 * 1024
 # Reviewer names travel in URLs, CSV files and SQL parameters: keep them plain.
 _REVIEWER = re.compile(r"[^\W_][\w.@-]{0,63}")
-_CALL_TYPE = re.compile(r"^\[type: ([^\]]+)\](?: (.*))?$", re.DOTALL)
 # What the sample folder may serve, by suffix.
 _CONTENT_TYPES = {
     ".png": "image/png",
@@ -104,37 +103,6 @@ def validate_reviewer(name: Any) -> str:
             "starting with a letter or digit",
         )
     return name
-
-
-def compose_note(note: str | None, call_type: str | None) -> str | None:
-    """The note stored with a verdict: ``[type: CLASS] free text`` when another call type is named.
-
-    Parameters
-    ----------
-    note : str or None
-        The reviewer's free text.
-    call_type : str or None
-        Another of the model's classes that the reviewer heard instead.
-
-    Returns
-    -------
-    str or None
-        None when both are empty.
-    """
-    note = (note or "").strip()
-    if call_type:
-        return f"[type: {call_type}]" + (f" {note}" if note else "")
-    return note or None
-
-
-def parse_note(stored: str | None) -> tuple[str, str | None]:
-    """The free text and the other call type of a stored note (inverse of ``compose_note``)."""
-    if not stored:
-        return "", None
-    m = _CALL_TYPE.match(stored)
-    if m is None:
-        return stored, None
-    return (m.group(2) or ""), m.group(1)
 
 
 def _is_loopback(host: str) -> bool:

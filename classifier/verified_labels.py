@@ -8,17 +8,16 @@ background (docs/formats.md §3, "Partial tables").
 from __future__ import annotations
 
 import argparse
-import re
 import sqlite3
 import sys
 from pathlib import Path
 from typing import Any
 
 from .errors import InputError
-from .estimate import consensus
 from .labels import BACKGROUND
 from .outputs import check_output, csv_header_is, write_csv
 from .store import latest_run_id, open_store
+from .verdicts import consensus, verdict_on_label
 
 __all__ = ["VERIFIED_LABEL_COLUMNS", "export_verified_labels", "verified_label_rows", "add_export_labels_verb"]
 
@@ -38,7 +37,6 @@ VERIFIED_LABEL_COLUMNS = [
     "verdict",
     "reviewers",
 ]
-_TYPE = re.compile(r"^\[type: ([^\]]+)\]")
 
 
 def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict[str, Any]], dict[str, int]]:
@@ -46,33 +44,34 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
 
     Each verified detection gives one row: ``yes`` its class, ``no`` background (a hard
     negative), "another call type" that type, ``unsure`` nothing. With several reviewers the
-    majority decides (a tie is unsure), and a type named by the majority of the reviewers
-    who named one.
+    majority decides (a tie is unsure; a vote naming another type counts as no, see
+    ``verdicts.verdict_on_label``), and the type named most often when the majority is no
+    and most of those reviewers named one.
     """
-    votes: dict[int, list[tuple[str, str | None, str]]] = {}
-    for r in con.execute(
-        "SELECT v.detection_id, v.verdict, v.note, v.reviewer FROM verdicts v JOIN detections d "
-        "USING (detection_id) WHERE d.run_id=? ORDER BY v.detection_id, v.reviewer",
+    # One read: every verdict of the run with its detection, file, model and latest sample.
+    rows = con.execute(
+        "SELECT v.detection_id, v.verdict, v.note, v.reviewer, d.start_s, d.end_s, d.low_hz, d.high_hz, "
+        "d.label, d.superseded, f.name AS file, dep.name AS deployment, r.model_sha256, "
+        "(SELECT MAX(i.sample_id) FROM review_items i WHERE i.detection_id=d.detection_id) AS sample_id "
+        "FROM verdicts v JOIN detections d USING (detection_id) JOIN files f ON f.file_id=d.file_id "
+        "JOIN runs r ON r.run_id=d.run_id JOIN deployments dep ON dep.deployment_id=f.deployment_id "
+        "WHERE d.run_id=? ORDER BY v.detection_id, v.reviewer",
         (run_id,),
-    ):
-        m = _TYPE.match(r["note"] or "")
-        votes.setdefault(r["detection_id"], []).append((r["verdict"], m.group(1).strip() if m else None, r["reviewer"]))
+    ).fetchall()
+    by_detection: dict[int, list[sqlite3.Row]] = {}
+    for r in rows:
+        by_detection.setdefault(r["detection_id"], []).append(r)
     left_out = {"unsure": 0, "superseded": 0}
-    rows = []
-    for det_id, vs in sorted(votes.items()):
-        d = con.execute(
-            "SELECT d.*, f.name AS file, dep.name AS deployment, r.model_sha256, "
-            "(SELECT MAX(i.sample_id) FROM review_items i WHERE i.detection_id=d.detection_id) AS sample_id "
-            "FROM detections d JOIN files f USING (file_id) JOIN runs r ON r.run_id=d.run_id "
-            "JOIN deployments dep ON dep.deployment_id=f.deployment_id WHERE d.detection_id=?",
-            (det_id,),
-        ).fetchone()
+    out = []
+    for det_id, vs in by_detection.items():
+        d = vs[0]
         if d["superseded"]:
             # Its file changed and was scored again: the times may no longer hold.
             left_out["superseded"] += 1
             continue
-        types = [t for _, t, _ in vs if t and t != d["label"]]
-        plain = [("no" if (t and t != d["label"]) else v) for v, t, _ in vs]
+        judged = [verdict_on_label(v["verdict"], v["note"], d["label"]) for v in vs]
+        plain = [verdict for verdict, _ in judged]
+        types = [heard for _, heard in judged if heard]
         verdict = consensus(plain)
         if types and plain.count("no") * 2 > len(plain) and len(types) * 2 > plain.count("no"):
             label = max(set(types), key=types.count)
@@ -83,7 +82,7 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
         else:
             left_out["unsure"] += 1
             continue
-        rows.append(
+        out.append(
             {
                 "deployment": d["deployment"],
                 "file": d["file"],
@@ -96,12 +95,12 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
                 "detection_id": det_id,
                 "run_id": run_id,
                 "model_sha256": d["model_sha256"],
-                "sample_id": d["sample_id"] if d["sample_id"] is not None else "",
+                "sample_id": d["sample_id"],
                 "verdict": verdict,
-                "reviewers": ";".join(sorted({rv for _, _, rv in vs})),
+                "reviewers": ";".join(sorted({v["reviewer"] for v in vs})),
             }
         )
-    return rows, left_out
+    return out, left_out
 
 
 def export_verified_labels(

@@ -105,6 +105,17 @@ def test_majority_of_reviewers_and_ties_as_unsure():
     assert consensus(["unsure", "no", "no"]) == "no"
 
 
+def test_another_call_type_is_a_no_for_the_label_whatever_the_button():
+    """docs/estimates.md §1: a note naming another call type makes the verdict a false
+    detection of the sampled label; the same type as the label changes nothing."""
+    from callsieve.classifier.verdicts import verdict_on_label
+
+    assert verdict_on_label("unsure", "[type: down] falls", LABEL) == ("no", "down")
+    assert verdict_on_label("yes", "[type: down]", LABEL) == ("no", "down")
+    assert verdict_on_label("yes", f"[type: {LABEL}]", LABEL) == ("yes", None)
+    assert verdict_on_label("unsure", "faint", LABEL) == ("unsure", None)
+
+
 def test_estimate_covers_the_true_precision_and_documents_every_key(verified, tmp_path, capsys):
     db, correct, conf, edges, _ = verified
     assert main(["estimate", str(db), "--json", "--target-precision", "0.8", "--out", str(tmp_path / "e")]) == 0
