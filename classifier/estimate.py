@@ -169,7 +169,8 @@ def _recall_over_segments(
     d_start = np.array([r[1] for r in det], dtype=float)
     d_end = np.array([r[2] for r in det], dtype=float)
     d_conf = np.array([r[3] for r in det], dtype=float)
-    t_seg = np.array(truth_seg, dtype=np.int64)
+    position = {i: k for k, i in enumerate(seg_ids)}
+    t_pos = np.array([position[i] for i in truth_seg], dtype=np.int64)
     weight = np.array([1.0 / s["inclusion_probability"] for s in segments])
     annotated = np.array([len(calls[i]) for i in seg_ids], dtype=float)
     out = []
@@ -186,7 +187,7 @@ def _recall_over_segments(
         )
         found_calls = np.zeros(len(truth_key), bool)
         found_calls[match[match >= 0]] = True
-        matched = np.array([found_calls[t_seg == i].sum() for i in seg_ids], dtype=float)
+        matched = np.bincount(t_pos[found_calls], minlength=len(seg_ids)).astype(float)
         r, _, low, high = est.ratio_estimate(matched, annotated, weights=weight)
         out.append(
             {"threshold": t, "recall": _interval(r), "recall_low": _interval(low), "recall_high": _interval(high)}
@@ -279,11 +280,8 @@ def _presence(
         certain = np.bincount(inverse[known & (fixed_p == 1.0)], minlength=names.size) > 0
         counts = np.zeros((names.size, n_strata))
         np.add.at(counts, (inverse[~known], h_idx[~known]), 1.0)
-        with np.errstate(divide="ignore"):
-            log_q = np.log1p(-np.clip(draws, 0, 1 - 1e-12))
-            log_q_point = np.log1p(-np.clip(point, 0, 1 - 1e-12))
-        p_unit = np.where(certain, 1.0, 1.0 - np.exp(counts @ log_q_point))
-        reps = np.where(certain[:, None], 1.0, 1.0 - np.exp(counts @ log_q)).sum(axis=0)
+        p_unit = est.presence_probability(counts, point, certain)
+        reps = est.presence_probability(counts, draws, certain).sum(axis=0)
         out[f"{unit}_detected"] = int(names.size)
         out[f"{unit}_expected"] = round(float(p_unit.sum()), 3)
         out[f"{unit}_expected_low"] = round(float(np.percentile(reps, 2.5)), 3)
@@ -417,8 +415,8 @@ def estimate_run(
             y2, n2, _ = _counts(items, L, unsure_as=case)
             p = est.precision_above(N, y2 + n2, y2, 0)
             sensitivity.append({"unsure_as": case, "precision_above_floor": _interval(p.estimate)})
-        calibration = _calibration(items, strata)
-        drift = _drift(strata, calibration)
+        calibration = _calibration(items, strata, target_precision)
+        drift = _drift(strata)
         recall_audit, density = None, None
         if audit is not None:
             segments = [
@@ -503,7 +501,7 @@ def _set_aside_training_audio(con: sqlite3.Connection, run_id: int, items: dict[
     }
 
 
-def _calibration(items: dict[int, dict], strata: list[dict]) -> dict:
+def _calibration(items: dict[int, dict], strata: list[dict], target: float) -> dict:
     judged = [it for it in items.values() if it["verdict"] in ("yes", "no")]
     fit = None
     if judged:
@@ -517,10 +515,13 @@ def _calibration(items: dict[int, dict], strata: list[dict]) -> dict:
             for s in strata
         ],
         "logistic": None if fit is None else {"beta0": round(fit[0], 4), "beta1": round(fit[1], 4)},
+        # The confidence at which the fit gives a detection the target's chance of being
+        # true (Wood & Kahl 2024); none where the fit does not rise with confidence.
+        "confidence_at_target": (None if fit is None or fit[1] <= 0 else est.score_for_probability(target, *fit)),
     }
 
 
-def _drift(strata: list[dict], calibration: dict) -> dict:
+def _drift(strata: list[dict]) -> dict:
     """Alarm where verified precision lies well below the confidence the model claimed."""
     low = [
         s

@@ -190,10 +190,15 @@ def _ratio_and_variance(
     """R = Σ w y / Σ w x and its linearised variance (with-replacement form, times 1 − f).
 
     With equal weights this is Cochran's (1977) §6.3 v(R) = (1 − f)/(n x̄²) Σ (y − R x)²/(n − 1).
+    NaN for both where Σ x = 0; NaN variance from one cluster (no spread to estimate from).
     """
     n = y.size
+    if n == 0 or x.sum() <= 0:
+        return float("nan"), float("nan")
     w = np.ones(n) if weights is None else np.asarray(weights, float)
     r = np.sum(w * y) / np.sum(w * x)
+    if n < 2:
+        return float(r), float("nan")
     v = (1.0 - sampling_fraction) * n / (n - 1) * np.sum((w * (y - r * x)) ** 2) / np.sum(w * x) ** 2
     return float(r), float(v)
 
@@ -223,12 +228,10 @@ def ratio_estimate(
         NaN where Σ x = 0, and no interval from one cluster.
     """
     y, x = np.asarray(numerator, float), np.asarray(denominator, float)
-    n = y.size
-    if n == 0 or x.sum() <= 0:
-        return float("nan"), float("nan"), float("nan"), float("nan")
-    if n < 2:
-        return float(y.sum() / x.sum()), float("nan"), float("nan"), float("nan")
     r, v = _ratio_and_variance(y, x, sampling_fraction, weights)
+    if not np.isfinite(v):
+        return r, float("nan"), float("nan"), float("nan")
+    n = y.size
     tail = 1.0 - (1.0 - confidence_level) / 2.0
     n_star = r * (1 - r) / v if v > 0 and 0 < r < 1 else float(x.sum())
     n_star *= (stats.norm.ppf(tail) / stats.t.ppf(tail, n - 1)) ** 2
@@ -251,13 +254,10 @@ def rate_estimate(
         interval from one stretch.
     """
     y, x = np.asarray(counts, float), np.asarray(hours, float)
-    n = y.size
-    if n == 0 or x.sum() <= 0:
-        return float("nan"), float("nan"), float("nan"), float("nan")
-    if n < 2:
-        return float(y.sum() / x.sum()), float("nan"), float("nan"), float("nan")
     r, v = _ratio_and_variance(y, x, sampling_fraction, weights)
-    half = float(stats.t.ppf(1.0 - (1.0 - confidence_level) / 2.0, n - 1)) * np.sqrt(v)
+    if not np.isfinite(v):
+        return r, float("nan"), float("nan"), float("nan")
+    half = float(stats.t.ppf(1.0 - (1.0 - confidence_level) / 2.0, y.size - 1)) * np.sqrt(v)
     return r, float(np.sqrt(v)), max(r - half, 0.0), r + half
 
 
@@ -302,19 +302,27 @@ def score_for_probability(p: float, beta0: float, beta1: float) -> float:
     return float(1.0 / (1.0 + np.exp(-z)))
 
 
-def presence_probability(precisions: list[np.ndarray]) -> np.ndarray:
+def presence_probability(counts: np.ndarray, precision: np.ndarray, certain: np.ndarray | None = None) -> np.ndarray:
     """Per unit of time (hour, day), the chance it holds at least one true detection.
 
     Parameters
     ----------
-    precisions : list of arrays, per unit the estimated precision of each of its
-        detections (its stratum's), taken as independent
+    counts : array [n_units, n_strata], detections of each unit in each stratum
+    precision : array [n_strata] or [n_strata, n_draws], each stratum's precision (a
+        detection's chance of being true), detections taken as independent
+    certain : array of bool [n_units], optional, units known to hold a true detection
 
     Returns
     -------
-    array, 1 − Π (1 − p_j) per unit (0 for a unit without detections)
+    array [n_units] or [n_units, n_draws], 1 − Π (1 − p_h)^(n_uh) per unit (0 for a unit
+    without detections)
     """
-    return np.array([1.0 - float(np.prod(1.0 - np.asarray(p, float))) for p in precisions])
+    log_miss = np.log1p(-np.clip(np.asarray(precision, float), 0.0, 1.0 - 1e-12))
+    p = 1.0 - np.exp(np.asarray(counts, float) @ log_miss)
+    if certain is not None:
+        shape = (-1,) + (1,) * (p.ndim - 1)
+        p = np.where(np.asarray(certain, bool).reshape(shape), 1.0, p)
+    return p
 
 
 def occupancy_likelihood(y: int, surveys: int, psi: float, p11: float, p10: float) -> float:

@@ -137,6 +137,11 @@ def test_estimate_covers_the_true_precision_and_documents_every_key(verified, tm
     tg = r["target"]
     if tg["threshold_guaranteed"] is not None:
         assert tg["threshold_point"] is not None and tg["threshold_guaranteed"] >= tg["threshold_point"]
+    # The logistic fit's confidence for the target probability inverts the fit (Wood & Kahl 2024).
+    fit, at = r["calibration"]["logistic"], r["calibration"]["confidence_at_target"]
+    if fit is not None and fit["beta1"] > 0:
+        z = fit["beta0"] + fit["beta1"] * np.log(at / (1 - at))
+        assert 1 / (1 + np.exp(-z)) == pytest.approx(0.8, abs=1e-3)
     assert (tmp_path / "e" / "estimate.json").is_file()
     assert (tmp_path / "e" / "precision-by-threshold.png").stat().st_size > 1000
     assert r["presence"]["hours_expected"] <= r["presence"]["hours_detected"]

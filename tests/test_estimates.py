@@ -131,7 +131,12 @@ def test_score_for_probability_and_a_recovered_logistic_fit():
 
 def test_presence_probability_and_occupancy_likelihood():
     # An hour with detections of precision 0.5 and 0.2 holds a true one with 1 - 0.5 * 0.8.
-    assert presence_probability([[0.5, 0.2], [], [1.0]]) == pytest.approx([0.6, 0.0, 1.0])
+    # Strata of precision 0.5, 0.2 and 1.0; units holding one detection of the first two,
+    # none, and one of the third.
+    counts = [[1, 1, 0], [0, 0, 0], [0, 0, 1]]
+    assert presence_probability(counts, [0.5, 0.2, 1.0]) == pytest.approx([0.6, 0.0, 1.0])
+    # A unit known to hold a true detection (a yes verdict) is certain.
+    assert presence_probability(counts, [0.5, 0.2, 1.0], [False, True, False]) == pytest.approx([0.6, 1.0, 1.0])
     # Royle & Link (2006): psi 0.6, p11 0.5, p10 0.05, K 5 -> L(0), L(1), L(3).
     got = [occupancy_likelihood(y, 5, 0.6, 0.5, 0.05) for y in (0, 1, 3)]
     assert got == pytest.approx([0.328262, 0.175201, 0.187951], abs=5e-7)
