@@ -16,7 +16,7 @@ from callsieve.features._validation import ParameterError
 from .errors import InputError
 from .export import CAUTION
 
-__all__ = ["main", "build_parser"]
+__all__ = ["main", "build_parser", "progress_printer"]
 
 EXIT_OK, EXIT_FAILED, EXIT_INPUT = 0, 1, 2
 
@@ -65,7 +65,8 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _progress(args: argparse.Namespace):
+def progress_printer(args: argparse.Namespace):
+    """Where a verb's progress lines go: stderr, prefixed, or nowhere with ``--quiet``."""
     if args.quiet:
         return None
     return lambda line: print(f"callsieve: {line}", file=sys.stderr, flush=True)
@@ -83,7 +84,7 @@ def _cmd_train(args: argparse.Namespace) -> int:
         tracking_uri=args.tracking_uri,
         experiment=args.experiment,
         register=args.register,
-        progress=_progress(args),
+        progress=progress_printer(args),
         force=args.force,
     )
     print(format_training_report(report))
@@ -126,7 +127,7 @@ def _cmd_score(args: argparse.Namespace) -> int:
         threshold=args.threshold,
         jobs=args.jobs,
         scheduler=args.scheduler,
-        progress=_progress(args),
+        progress=progress_printer(args),
     )
     hps = summary["hours_per_second"]
     print(
@@ -180,7 +181,7 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
         tolerance_s=args.tolerance_s,
         tracking_uri=args.tracking_uri,
         complete_truth=args.complete_truth,
-        progress=_progress(args),
+        progress=progress_printer(args),
         deployment=args.deployment,
     )
     print(format_evaluation(metrics))

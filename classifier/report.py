@@ -12,7 +12,6 @@ import argparse
 import json
 import math
 import sqlite3
-import sys
 from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -918,7 +917,9 @@ def format_report(r: dict[str, Any], out: Path) -> str:
 
 
 def _cmd_report(args: argparse.Namespace) -> int:
-    say = None if args.quiet else (lambda line: print(f"callsieve: {line}", file=sys.stderr, flush=True))
+    from .cli import progress_printer
+
+    say = progress_printer(args)
     report = build_report(
         args.db,
         args.out,

@@ -3,15 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import sys
+
+from .cli import progress_printer
 
 __all__ = ["add_review_verbs"]
-
-
-def _say(args: argparse.Namespace):
-    if args.quiet:
-        return None
-    return lambda line: print(f"callsieve: {line}", file=sys.stderr, flush=True)
 
 
 def _cmd_sample(args: argparse.Namespace) -> int:
@@ -40,7 +35,7 @@ def _cmd_sample(args: argparse.Namespace) -> int:
             segment_minutes=args.segment_minutes,
             jobs=args.jobs,
             deployment=args.deployment,
-            progress=_say(args),
+            progress=progress_printer(args),
         )
     else:
         summary = draw_sample(
@@ -62,7 +57,7 @@ def _cmd_sample(args: argparse.Namespace) -> int:
             context_s=args.context_s,
             jobs=args.jobs,
             deployment=args.deployment,
-            progress=_say(args),
+            progress=progress_printer(args),
         )
     print(format_sample_summary(summary))
     return 0
