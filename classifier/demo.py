@@ -342,9 +342,7 @@ REVIEW_ERROR_RATE = 0.03
 SIMULATED_REVIEWER = "simulated-reviewer"
 
 
-def _review_step(
-    out: Path, db: Path, summary: dict[str, Any], seed: int, folder: Path | None = None, render: bool = True
-) -> dict[str, Any]:
+def _review_step(out: Path, db: Path, summary: dict[str, Any], seed: int, folder: Path | None = None) -> dict[str, Any]:
     """Draw the sample, answer it from the truth with errors, import the answers, count them."""
     import csv
 
@@ -363,7 +361,6 @@ def _review_step(
             bins=REVIEW_BINS,
             seed=seed,
             replace=True,
-            render=render,
         )
     except InputError as exc:  # a run without a target detection has nothing to verify
         return {"skipped": str(exc)}

@@ -101,7 +101,6 @@ def band_means(psd: np.ndarray, frequency_hz: np.ndarray, edges: np.ndarray) -> 
     inside = (idx >= 0) & (idx < edges.size - 1)
     n_bands = edges.size - 1
     counts = np.bincount(idx[inside], minlength=n_bands).astype(float)
-    sums = np.zeros((psd.shape[0], n_bands))
     # Bins are sorted, so each band's bins are one run: a cumulative sum gives every band.
     cols = psd[:, inside]
     starts = np.searchsorted(idx[inside], np.arange(n_bands))
