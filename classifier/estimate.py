@@ -19,7 +19,7 @@ import numpy as np
 from . import estimates as est
 from .errors import InputError
 from .evaluation import match_detections
-from .store import latest_run_id, open_store
+from .store import epoch_s, latest_run_id, open_store
 from .verdicts import consensus, verdict_on_label
 
 __all__ = ["estimate_run", "format_estimate", "consensus", "ESTIMATE_KEYS"]
@@ -236,9 +236,7 @@ def _presence(
 
     files = con.execute("SELECT file_id, start_utc FROM files WHERE start_utc<>'' ORDER BY file_id").fetchall()
     file_key = np.array([f[0] for f in files], dtype=np.int64)
-    file_epoch = np.array(
-        [datetime.fromisoformat(f[1].replace("Z", "+00:00")).astimezone(UTC).timestamp() for f in files]
-    )
+    file_epoch = np.array([epoch_s(f[1]) for f in files])
     cur = con.cursor()
     cur.row_factory = None  # plain tuples: a year's run may hold millions of rows
     cur.execute(

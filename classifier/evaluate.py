@@ -16,7 +16,6 @@ import sys
 import time
 from collections.abc import Callable
 from dataclasses import asdict
-from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -48,7 +47,7 @@ from .plots import (
     threshold_figure,
 )
 from .scoring import Progress
-from .store import latest_run_id, open_store
+from .store import epoch_s, latest_run_id, open_store
 
 __all__ = ["evaluate", "format_evaluation", "METRIC_KEYS", "THRESHOLDS"]
 
@@ -73,10 +72,6 @@ METRIC_KEYS = (
     "hour_presence",
     "baseline",
 )
-
-
-def _epoch_s(iso_utc: str) -> float:
-    return datetime.fromisoformat(iso_utc.replace("Z", "+00:00")).timestamp()
 
 
 def _finite(x: float) -> float | None:
@@ -241,7 +236,7 @@ def evaluate(
     t_end = np.array([a.end_s for a in truth])
     file_code = {f: k for k, f in enumerate(judged)}
     t_code = np.array([file_code[f] for f in t_file], dtype=np.int64)
-    start_epoch = np.array([_epoch_s(files[f]["start_utc"]) for f in judged])
+    start_epoch = np.array([epoch_s(files[f]["start_utc"]) for f in judged])
     t_hour = ((start_epoch[t_code] + t_start) // 3600).astype(np.int64)
     d_hour = ((start_epoch[dets["file_code"]] + dets["start_s"]) // 3600).astype(np.int64)
     effort = _effort_hours([(start_epoch[k], float(files[f]["duration_s"])) for k, f in enumerate(judged)])

@@ -8,7 +8,7 @@ from typing import Any
 
 from .errors import InputError
 from .outputs import check_output, csv_header_is, write_csv
-from .store import latest_run_id, open_store
+from .store import latest_run_id, open_store, parse_utc
 
 __all__ = ["DETECTION_COLUMNS", "export_detections", "CAUTION"]
 
@@ -66,7 +66,7 @@ def _rows(con, run_id: int, label: str | None, min_confidence: float | None):
             (det, run, dep, name, s0, s1, fstart, lo, hi, lab, conf, rl, snr, clip) = tuple(r)
             t0 = starts.get(fstart)
             if t0 is None:
-                t0 = starts[fstart] = datetime.fromisoformat(fstart.replace("Z", "+00:00"))
+                t0 = starts[fstart] = parse_utc(fstart)
             yield [det, run, dep, name, s0, s1, _iso(t0, s0), _iso(t0, s1), lo, hi, lab, conf, rl, snr, clip]
 
 

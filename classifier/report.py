@@ -24,7 +24,7 @@ from .errors import InputError, read_toml
 from .export import CAUTION
 from .labels import BACKGROUND
 from .outputs import write_csv, write_text
-from .store import latest_run_id, open_store
+from .store import epoch_s, latest_run_id, open_store
 
 __all__ = [
     "DONE",
@@ -467,10 +467,6 @@ def resolve_thresholds(
 # --- reading the store ----------------------------------------------------------------
 
 
-def _epoch(text: str) -> float:
-    return datetime.fromisoformat(text.replace("Z", "+00:00")).astimezone(UTC).timestamp()
-
-
 def _read_run(con: sqlite3.Connection, run_id: int) -> dict[str, Any]:
     run = con.execute(
         "SELECT r.*, d.name AS deployment, d.manifest FROM runs r JOIN deployments d USING (deployment_id) "
@@ -488,7 +484,7 @@ def _read_run(con: sqlite3.Connection, run_id: int) -> dict[str, Any]:
         "run": dict(run),
         "file_id": np.array([f["file_id"] for f in timed], np.int64),
         "name": [f["name"] for f in timed],
-        "start_s": np.array([_epoch(f["start_utc"]) for f in timed], float),
+        "start_s": np.array([epoch_s(f["start_utc"]) for f in timed], float),
         "duration_s": np.array([float(f["duration_s"] or 0.0) for f in timed], float),
         "status": np.array([code.get(f["status"], UNSCORED) for f in timed], np.int64),
         "untimed_failed": [f["name"] for f in files if not f["start_utc"]],
@@ -594,7 +590,7 @@ def soundscape_from_store(
         sec, e, psd = decode_soundscape_row(row[2], row[3], row[4])
         if acc is None:
             acc = SoundscapeAccumulator(start, step, n_time, edges, source_bin_s=float(row[1]))
-        acc.add_file(_epoch(row[0]), float(row[1]), sec, psd, e)
+        acc.add_file(epoch_s(row[0]), float(row[1]), sec, psd, e)
     return None if acc is None else acc.result()
 
 

@@ -31,7 +31,7 @@ import numpy as np
 
 from .errors import InputError
 from .outputs import check_output, csv_header_is, write_csv, write_text
-from .store import Transaction, latest_run_id, now_utc, open_store
+from .store import Transaction, latest_run_id, now_utc, open_store, parse_utc
 from .verdicts import VERDICTS
 
 __all__ = [
@@ -302,11 +302,6 @@ def day_groups(days: Sequence[str], m: int) -> dict[str, str]:
 # ---------------------------------------------------------------------------------------
 
 
-def _parse_utc(text: str) -> datetime:
-    t = datetime.fromisoformat(text.replace("Z", "+00:00"))
-    return t if t.tzinfo else t.replace(tzinfo=UTC)
-
-
 def _iso(t: datetime) -> str:
     return t.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
 
@@ -425,7 +420,7 @@ def _done_files(con: sqlite3.Connection, run_id: int) -> list[tuple[int, datetim
         "WHERE rf.run_id=? AND rf.status='done' ORDER BY f.start_utc, f.file_id",
         (run_id,),
     ).fetchall()
-    return [(int(r[0]), _parse_utc(r[1]), float(r[2])) for r in rows]
+    return [(int(r[0]), parse_utc(r[1]), float(r[2])) for r in rows]
 
 
 # ---------------------------------------------------------------------------------------
@@ -1162,7 +1157,7 @@ def _render(
                 (run["run_id"], d["file_id"], d["detection_id"], view0, view1),
             )
         ]
-        start_utc = _parse_utc(d["file_start_utc"]) + timedelta(seconds=d["start_s"])
+        start_utc = parse_utc(d["file_start_utc"]) + timedelta(seconds=d["start_s"])
         title = f"{d['file']}  {_iso(start_utc)}"
         if not blind:
             title += f"  {d['label']} {d['confidence']:.2f}"
@@ -1246,7 +1241,7 @@ def _sample_rows(con: sqlite3.Connection, sample_id: int, blind: bool) -> list[d
     out = []
     for r in rows:
         row = dict(r)
-        row["start_utc"] = _iso(_parse_utc(row["file_start_utc"]) + timedelta(seconds=row["start_s"]))
+        row["start_utc"] = _iso(parse_utc(row["file_start_utc"]) + timedelta(seconds=row["start_s"]))
         if blind:
             for k in BLIND_HIDDEN:
                 row.pop(k, None)
@@ -1275,7 +1270,7 @@ def _finish(
     columns = [c for c in SAMPLE_COLUMNS if not (blind and c in BLIND_HIDDEN)]
     write_csv(folder / "sample.csv", columns, rows)
     seg_rows = [
-        dict(r) | {"start_utc": _iso(_parse_utc(r["file_start_utc"]) + timedelta(seconds=r["start_s"]))}
+        dict(r) | {"start_utc": _iso(parse_utc(r["file_start_utc"]) + timedelta(seconds=r["start_s"]))}
         for r in con.execute(
             "SELECT g.segment_id, g.start_s, g.end_s, g.stratum, g.inclusion_probability, f.name AS file, "
             "f.start_utc AS file_start_utc, dep.name AS deployment FROM audit_segments g "

@@ -32,7 +32,7 @@ import sys
 import threading
 import time
 from collections.abc import Callable
-from datetime import datetime, timedelta
+from datetime import timedelta
 from http import HTTPStatus
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
@@ -42,7 +42,7 @@ from urllib.parse import parse_qs, quote, unquote, urlsplit
 from . import review_page
 from .agreement import cohen_kappa
 from .errors import InputError
-from .store import Transaction, now_utc, open_store
+from .store import Transaction, now_utc, open_store, parse_utc
 from .verdicts import VERDICTS, compose_note, parse_note
 
 __all__ = [
@@ -123,7 +123,7 @@ def _finite(x: Any) -> Any:
 
 def _utc_at(start_utc: str, offset_s: float) -> str:
     """ISO 8601 UTC ('Z', milliseconds) of a time ``offset_s`` after a file's UTC start."""
-    t = datetime.fromisoformat(start_utc.replace("Z", "+00:00")) + timedelta(seconds=float(offset_s))
+    t = parse_utc(start_utc) + timedelta(seconds=float(offset_s))
     return t.strftime("%Y-%m-%dT%H:%M:%S.") + f"{t.microsecond // 1000:03d}Z"
 
 

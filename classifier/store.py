@@ -45,7 +45,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["SCHEMA_VERSION", "open_store", "now_utc"]
+__all__ = ["SCHEMA_VERSION", "open_store", "now_utc", "parse_utc", "epoch_s"]
 
 SCHEMA_VERSION = 1
 
@@ -183,6 +183,17 @@ CREATE TABLE IF NOT EXISTS audit_segments (
     inclusion_probability REAL NOT NULL
 );
 """
+
+
+def parse_utc(text: str) -> datetime:
+    """A time as the store writes it (ISO 8601, 'Z' or an offset; naive taken as UTC)."""
+    t = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    return t if t.tzinfo else t.replace(tzinfo=UTC)
+
+
+def epoch_s(text: str) -> float:
+    """Seconds since 1970-01-01 UTC of a time as the store writes it."""
+    return parse_utc(text).timestamp()
 
 
 def now_utc() -> str:
