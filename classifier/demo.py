@@ -8,14 +8,10 @@ from pathlib import Path
 from typing import Any, TextIO
 
 from .calibrate import calibration_summary
+from .export import CAUTION
 from .scenario import SIMULATED_NOTE, write_scenario
 
 __all__ = ["run_demo"]
-
-CAUTION = (
-    "Detections are candidates for trained analysts to verify; where results feed "
-    "mitigation or permit decisions, local regulations and qualified practice decide."
-)
 
 
 def run_demo(

@@ -19,6 +19,7 @@ import numpy as np
 from . import estimates as est
 from .errors import InputError
 from .evaluation import match_detections
+from .export import CAUTION
 from .store import epoch_s, latest_run_id, open_store
 from .verdicts import consensus, verdict_on_label
 
@@ -463,11 +464,7 @@ def estimate_run(
         "density": density,
         "presence": presence,
         "trained_on_verified": trained,
-        "caution": (
-            "Estimates hold for this run and its verified sample only. Detections are candidates for trained "
-            "analysts; where results feed mitigation or permit decisions, local regulations and qualified "
-            "practice decide."
-        ),
+        "caution": f"Estimates hold for this run and its verified sample only. {CAUTION}",
     }
 
 
