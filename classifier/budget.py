@@ -21,6 +21,7 @@ from callsieve.features.propagation import (
     absorption_db_per_km,
     received_level_db,
     sample_value,
+    spreading_loss_db,
     transmission_loss_db,
     voltage_rms,
 )
@@ -87,9 +88,7 @@ def level_chain(
     a sine's crest factor assumed for an rms source; negative: clipped).
     """
     r = np.asarray(range_m, dtype=float)
-    no_absorption = transmission_loss_db(r, frequency_hz, water, spreading, transition_range_m) - (
-        absorption_db_per_km(frequency_hz, water) * r / 1000.0
-    )
+    no_absorption = spreading_loss_db(r, spreading, transition_range_m)
     fg = absorption_db_per_km(frequency_hz, water, "francois-garrison") * r / 1000.0
     am = absorption_db_per_km(frequency_hz, water, "ainslie-mccolm") * r / 1000.0
     tl = no_absorption + fg
@@ -208,6 +207,15 @@ def _site_noise_db(dep: Deployment, frequency_hz: float, minutes: float = 10.0) 
     return {"psd_db": float(10.0 * np.log10(np.median(v))), "minutes": int(v.size)}
 
 
+def _transition_range_m(dep: Deployment, spreading: str) -> float | None:
+    """Where cylindrical spreading takes over: the site's depth (m), for 'spherical-cylindrical'."""
+    if spreading != "spherical-cylindrical":
+        return None
+    if dep.site.depth_m is None:
+        raise InputError(f"{dep.manifest_path}: [site] depth_m is needed for cylindrical spreading beyond the depth")
+    return float(dep.site.depth_m)
+
+
 def budget_chain(
     manifest: str | Path,
     source_level_db: float,
@@ -230,11 +238,7 @@ def budget_chain(
     if not 0.0 < frequency_hz <= fs / 2.0:
         raise InputError(f"--frequency must be above 0 and at most {fs / 2:g} Hz (half the {fs} Hz rate)")
     spreading = spreading or "spherical"
-    transition = None
-    if spreading == "spherical-cylindrical":
-        if dep.site.depth_m is None:
-            raise InputError(f"{manifest}: [site] depth_m is needed for cylindrical spreading beyond the depth")
-        transition = float(dep.site.depth_m)
+    transition = _transition_range_m(dep, spreading)
     sensitivity = float(dep.chain.system_sensitivity_db(np.array([frequency_hz]))[0])
     bits = converter_bits(dep.files[0].info.subtype)
     water = dep.site.water
@@ -593,9 +597,7 @@ def budget_detection(
         con.close()
     centre, recall, recall_lo, recall_hi = recall_curve(_recall_bins(Path(evaluation), label))
     noise = noise_band_levels_db(db, run_id, *band)
-    transition = float(dep.site.depth_m) if spreading == "spherical-cylindrical" and dep.site.depth_m else None
-    if spreading == "spherical-cylindrical" and transition is None:
-        raise InputError(f"{manifest}: [site] depth_m is needed for cylindrical spreading beyond the depth")
+    transition = _transition_range_m(dep, spreading)
     r = np.geomspace(1.0, 2e5, 600)
     loss = transmission_loss_db(r, frequency_hz, dep.site.water, spreading, transition)
     curves = {

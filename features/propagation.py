@@ -20,6 +20,7 @@ __all__ = [
     "francois_garrison_absorption_db_per_km",
     "ainslie_mccolm_absorption_db_per_km",
     "absorption_db_per_km",
+    "spreading_loss_db",
     "transmission_loss_db",
     "received_level_db",
     "source_level_db",
@@ -130,6 +131,36 @@ def absorption_db_per_km(
         raise ParameterError(f"absorption model must be one of {sorted(_ABSORPTION)}, got {model!r}") from None
 
 
+def spreading_loss_db(
+    range_m: np.ndarray | float, spreading: str = "spherical", transition_range_m: float | None = None
+) -> np.ndarray:
+    """Geometric spreading loss, dB re 1 m.
+
+    Parameters
+    ----------
+    range_m : np.ndarray or float, m
+    spreading : {'spherical', 'cylindrical', 'spherical-cylindrical'}
+        The last is spherical out to ``transition_range_m`` (m, e.g. the water depth),
+        cylindrical beyond it (common practice for shallow water).
+    transition_range_m : float, m
+    """
+    r = _as_range(range_m, 1.0)
+    if spreading == "spherical":
+        return spherical_spreading_loss_db(r)
+    if spreading == "cylindrical":
+        return cylindrical_spreading_loss_db(r)
+    if spreading == "spherical-cylindrical":
+        if transition_range_m is None or transition_range_m <= 0:
+            raise ParameterError("spherical-cylindrical spreading needs transition_range_m > 0")
+        r_t = float(transition_range_m)
+        return np.where(
+            r <= r_t,
+            spherical_spreading_loss_db(r),
+            spherical_spreading_loss_db(r_t) + cylindrical_spreading_loss_db(np.maximum(r, r_t), r_t),
+        )
+    raise ParameterError(f"spreading must be 'spherical', 'cylindrical' or 'spherical-cylindrical', got {spreading!r}")
+
+
 def transmission_loss_db(
     range_m: np.ndarray | float,
     frequency_hz: np.ndarray | float,
@@ -138,39 +169,19 @@ def transmission_loss_db(
     transition_range_m: float | None = None,
     absorption_model: str = "francois-garrison",
 ) -> np.ndarray:
-    """One-way transmission loss, dB: spreading plus ``alpha * r / 1000``.
+    """One-way transmission loss, dB: spreading (:func:`spreading_loss_db`) plus ``alpha * r / 1000``.
 
     Parameters
     ----------
     range_m : np.ndarray or float, m
     frequency_hz : np.ndarray or float, Hz (broadcast against ``range_m``)
     water : Seawater
-    spreading : {'spherical', 'cylindrical', 'spherical-cylindrical'}
-        The last is spherical out to ``transition_range_m`` (m, e.g. the water depth),
-        cylindrical beyond it (common practice for shallow water).
-    transition_range_m : float, m
+    spreading, transition_range_m : as :func:`spreading_loss_db`
     absorption_model : {'francois-garrison', 'ainslie-mccolm'}
     """
     r = _as_range(range_m, 1.0)
-    if spreading == "spherical":
-        loss = spherical_spreading_loss_db(r)
-    elif spreading == "cylindrical":
-        loss = cylindrical_spreading_loss_db(r)
-    elif spreading == "spherical-cylindrical":
-        if transition_range_m is None or transition_range_m <= 0:
-            raise ParameterError("spherical-cylindrical spreading needs transition_range_m > 0")
-        r_t = float(transition_range_m)
-        loss = np.where(
-            r <= r_t,
-            spherical_spreading_loss_db(r),
-            spherical_spreading_loss_db(r_t) + cylindrical_spreading_loss_db(np.maximum(r, r_t), r_t),
-        )
-    else:
-        raise ParameterError(
-            f"spreading must be 'spherical', 'cylindrical' or 'spherical-cylindrical', got {spreading!r}"
-        )
     alpha = absorption_db_per_km(frequency_hz, water, absorption_model)
-    return loss + alpha * r / 1000.0
+    return spreading_loss_db(r, spreading, transition_range_m) + alpha * r / 1000.0
 
 
 def received_level_db(source_level_db: np.ndarray | float, loss_db: np.ndarray | float) -> np.ndarray:
