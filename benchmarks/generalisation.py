@@ -79,14 +79,25 @@ def _cli(args: list[str], cwd: Path, log: Path) -> float:
     return seconds
 
 
-def run_seed(seed: int, folder: Path, hours: float, jobs: int) -> dict:
-    """Write, train, score and evaluate one seed of the hard scenario in ``folder``."""
+def run_seed(
+    seed: int, folder: Path, hours: float, jobs: int, config: Path | None = None, threshold: float | None = None
+) -> dict:
+    """Write, train, score and evaluate one seed of the hard scenario in ``folder``.
+
+    A scenario already written in ``folder`` by an earlier run (same seed and hours) is
+    used again, so that trials of training settings compare on the same recordings.
+    """
     from callsieve.classifier.scenario import CONFUSER_LABELS, write_scenario
 
     t_seed = time.perf_counter()
     scen = folder / "scenario"
+    kept = folder / "scenario-summary.json"
     t0 = time.perf_counter()
-    summary = write_scenario(scen, seed=seed, hours=hours, preset="hard")
+    if kept.exists() and json.loads(kept.read_text()).get("_written_for") == [seed, hours]:
+        summary = json.loads(kept.read_text())
+    else:
+        summary = write_scenario(scen, seed=seed, hours=hours, preset="hard")
+        kept.write_text(json.dumps(summary | {"_written_for": [seed, hours]}, default=str))
     scenario_s = time.perf_counter() - t0
     target = summary["target_label"]
     tracking = f"sqlite:///{(folder / 'mlflow.db').resolve()}"
@@ -110,12 +121,14 @@ def run_seed(seed: int, folder: Path, hours: float, jobs: int) -> dict:
             "--experiment",
             "generalisation",
             "--quiet",
-        ],
+        ]
+        + (["--config", str(config)] if config else []),
         folder,
         log,
     )
     scoring_s = _cli(
         ["score", str(model), "--deployment", summary["survey_manifest"], "--db", str(db), "--jobs", str(jobs)]
+        + (["--threshold", str(threshold)] if threshold is not None else [])
         + ["--quiet"],
         folder,
         log,
@@ -177,6 +190,48 @@ def run_seed(seed: int, folder: Path, hours: float, jobs: int) -> dict:
     }
 
 
+def run_demo_site(folder: Path, jobs: int, config: Path | None = None, threshold: float | None = None) -> dict:
+    """The demo's own question with the same settings: train at its training site (every
+    label, as the demo does), score and judge its survey site; written once, then used again.
+
+    Returns the target's average precision and the median duration of its detections at
+    confidence >= 0.5 beside the median duration of its truth calls.
+    """
+    import csv
+    import sqlite3
+
+    from callsieve.classifier.scenario import write_scenario
+
+    kept = folder / "scenario-summary.json"
+    if kept.exists():
+        summary = json.loads(kept.read_text())
+    else:
+        summary = write_scenario(folder / "scenario", seed=7, hours=12)
+        kept.write_text(json.dumps(summary, default=str))
+    target = summary["target_label"]
+    log, model, db, out = folder / "log.txt", folder / "model.skops", folder / "detections.db", folder / "evaluation"
+    train_args = ["train", "--deployment", summary["training_manifest"], "--labels", summary["training_labels"]]
+    train_args += ["--out", str(model), "--tracking-uri", f"sqlite:///{(folder / 'mlflow.db').resolve()}", "--quiet"]
+    training_s = _cli(train_args + (["--config", str(config)] if config else []), folder, log)
+    score_args = ["score", str(model), "--deployment", summary["survey_manifest"], "--db", str(db), "--jobs", str(jobs)]
+    scoring_s = _cli(score_args + (["--threshold", str(threshold)] if threshold is not None else []), folder, log)
+    _cli(["evaluate", str(db), "--truth", summary["survey_truth"], "--out", str(out), "--complete-truth"], folder, log)
+    m = json.loads((out / "metrics.json").read_text())["classes"][target]
+    with sqlite3.connect(db) as con:
+        spans = con.execute(
+            "SELECT end_s - start_s FROM detections WHERE label = ? AND confidence >= 0.5 AND superseded = 0", (target,)
+        ).fetchall()
+    with open(summary["survey_truth"], newline="") as fh:
+        calls = [float(r["end_s"]) - float(r["start_s"]) for r in csv.DictReader(fh) if r["label"] == target]
+    return {
+        "average_precision": m["average_precision"],
+        "median_detection_s": float(np.median([d for (d,) in spans])) if spans else None,
+        "median_call_s": float(np.median(calls)),
+        "training_s": round(training_s, 1),
+        "scoring_s": round(scoring_s, 1),
+    }
+
+
 def _confusers_taken(confusion: dict, target: str, confusers: tuple[str, ...]) -> tuple[int | None, int | None]:
     """Calls of the confusers whose most confident detection (at the operating threshold) is the target.
 
@@ -224,24 +279,39 @@ def _table(results: list[dict], columns: list[tuple[str, str, str]]) -> str:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--seeds", type=int, nargs="+", default=[1, 2, 3], help="scenario seeds (default 1 2 3)")
+    parser.add_argument(
+        "--seeds", type=int, nargs="*", default=[1, 2, 3], help="scenario seeds (default 1 2 3; none with --demo)"
+    )
     parser.add_argument("--hours", type=float, default=5.0, help="test site span, h (training: 0.3 of it; default 5)")
     parser.add_argument("--jobs", type=int, default=2, help="worker processes for scoring (default 2)")
     parser.add_argument("--json", type=Path, metavar="OUT", help="write every figure to this JSON file")
-    parser.add_argument("--folder", type=Path, help="keep each seed's files under DIR/seed-N (default: temporary)")
+    parser.add_argument(
+        "--folder",
+        type=Path,
+        help="keep each seed's files under DIR/seed-N (default: temporary); a scenario already there is used again",
+    )
+    parser.add_argument("--config", type=Path, metavar="TOML", help="training configuration passed to train")
+    parser.add_argument("--threshold", type=float, metavar="P", help="storage floor passed to score (default its own)")
+    parser.add_argument(
+        "--demo",
+        action="store_true",
+        help="also train, score and judge the demo's sites with the same settings (target AP, detection durations)",
+    )
     args = parser.parse_args()
+    trial = {"config": args.config, "threshold": args.threshold}
 
     results = []
     for seed in args.seeds:
         if args.folder is not None:
             folder = args.folder / f"seed-{seed}"
-            if folder.exists():
-                shutil.rmtree(folder)
-            folder.mkdir(parents=True)
-            results.append(run_seed(seed, folder, args.hours, args.jobs))
+            folder.mkdir(parents=True, exist_ok=True)
+            for old in folder.iterdir():  # everything but the scenario, which is used again
+                if old.name not in ("scenario", "scenario-summary.json"):
+                    shutil.rmtree(old) if old.is_dir() else old.unlink()
+            results.append(run_seed(seed, folder, args.hours, args.jobs, **trial))
         else:
             with tempfile.TemporaryDirectory(prefix=f"callsieve-hard-{seed}-") as tmp:
-                results.append(run_seed(seed, Path(tmp), args.hours, args.jobs))
+                results.append(run_seed(seed, Path(tmp), args.hours, args.jobs, **trial))
         r = results[-1]
         print(
             f"seed {seed}: AP {r['average_precision']}, recall at precision 0.9 {r['recall_at_precision_0.9']}, "
@@ -250,14 +320,34 @@ def main() -> None:
             flush=True,
         )
 
-    print(f"Hard scenario, target tarsel-upsweep, test site {args.hours:g} h ({len(results)} seeds)")
-    print()
-    print(_table(results, MAIN))
-    print("R@P0.9: recall at precision 0.9; 0 where the precision never reaches 0.9 (metrics.json: null).")
-    print()
-    print("Survey figures at the operating threshold (precision 0.9, else the F1-optimal one)")
-    print()
-    print(_table(results, SURVEY))
+    if results:
+        print(f"Hard scenario, target tarsel-upsweep, test site {args.hours:g} h ({len(results)} seeds)")
+        print()
+        print(_table(results, MAIN))
+        print("R@P0.9: recall at precision 0.9; 0 where the precision never reaches 0.9 (metrics.json: null).")
+        print()
+        print("Survey figures at the operating threshold (precision 0.9, else the F1-optimal one)")
+        print()
+        print(_table(results, SURVEY))
+    demo = None
+    if args.demo:
+        if args.folder is not None:
+            folder = args.folder / "demo"
+            folder.mkdir(parents=True, exist_ok=True)
+            for old in folder.iterdir():
+                if old.name not in ("scenario", "scenario-summary.json"):
+                    shutil.rmtree(old) if old.is_dir() else old.unlink()
+            demo = run_demo_site(folder, args.jobs, **trial)
+        else:
+            with tempfile.TemporaryDirectory(prefix="callsieve-demo-") as tmp:
+                demo = run_demo_site(Path(tmp), args.jobs, **trial)
+        print()
+        print(
+            f"Demo survey site (seed 7, 12 h), same settings: target AP {demo['average_precision']:.3f}; "
+            f"median duration of its detections at confidence >= 0.5 {demo['median_detection_s'] or 0:.2f} s "
+            f"against {demo['median_call_s']:.2f} s for its calls; training {demo['training_s']:.0f} s, "
+            f"scoring {demo['scoring_s']:.0f} s"
+        )
     if args.json:
         keys = [k for k, _, _ in MAIN + SURVEY] + ["scenario_s", "evaluation_s", "threshold_for_precision_0.9"]
         doc = {
@@ -269,6 +359,9 @@ def main() -> None:
             "hours": args.hours,
             "jobs": args.jobs,
             "seeds": results,
+            "demo": demo,
+            "config": str(args.config) if args.config else None,
+            "threshold": args.threshold,
             "summary": {k: _stats(results, k) for k in keys},
         }
         args.json.parent.mkdir(parents=True, exist_ok=True)
