@@ -85,6 +85,11 @@ class TrainingConfig:
         (fewer when there are fewer groups)
     seed : int
     descriptors : dict, descriptor settings; any left out are chosen from the labels
+    monotone_excess : bool, in a gradient-boosted model of one target (``--target``),
+        constrain the target's score to grow with every excess over the noise floor
+        (``snr_db`` and the ``*_excess_db`` descriptors): the same call heard louder over
+        the same noise never scores lower. Scikit-learn supports the constraint for two
+        classes only, so a model of every label is not constrained.
     """
 
     kind: str = "gradient-boosting"
@@ -98,6 +103,7 @@ class TrainingConfig:
     folds: int = 4
     seed: int = 0
     descriptors: dict[str, Any] = field(default_factory=dict)
+    monotone_excess: bool = True
 
     def __post_init__(self) -> None:
         if self.class_weight == "" and self.kind in MODEL_KINDS:
@@ -136,6 +142,7 @@ _CONSTRAINTS = [
     ("group_by", lambda v: v in ("auto", "hour", "file", "deployment"), "'auto', 'hour', 'file' or 'deployment'"),
     ("folds", lambda v: isinstance(v, int) and v >= 2, "an integer >= 2"),
     ("seed", lambda v: isinstance(v, int), "an integer"),
+    ("monotone_excess", lambda v: isinstance(v, bool), "true or false"),
 ]
 
 _TABLES = {
@@ -144,6 +151,7 @@ _TABLES = {
         "calibration": "calibration",
         "class_weight": "class_weight",
         "params": "params",
+        "monotone_excess": "monotone_excess",
     },
     "examples": {
         "background_ratio": "background_ratio",

@@ -375,13 +375,21 @@ def _sample_background(
     return idx[order_idx], weight[order_idx]
 
 
-def _estimator(config: TrainingConfig, names: list[str] | None = None) -> CallClassifier:
+def _is_excess(name: str) -> bool:
+    """A descriptor that grows as the same call is heard louder over the same noise."""
+    return name == "snr_db" or name.endswith("excess_db")
+
+
+def _estimator(config: TrainingConfig, names: list[str] | None = None, target: str | None = None) -> CallClassifier:
     # The model learns from relative descriptors only; absolute levels stay in the rows
     # (and in the outputs) but would teach it the training site's noise and ranges.
     columns = None if names is None else [i for i, n in enumerate(names) if not is_absolute_level(n)]
+    params = config.estimator_params
+    if config.monotone_excess and target and config.kind == "gradient-boosting" and names is not None:
+        params = params | {"monotonic_cst": [1 if _is_excess(names[i]) else 0 for i in columns]}
     return CallClassifier(
         kind=config.kind,
-        params=config.estimator_params,
+        params=params,
         calibration=config.calibration,
         class_weight=config.class_weight,
         folds=config.folds,
@@ -504,7 +512,7 @@ def train_model(
     with limited_threads(fit_threads()) as threads:
         if progress:
             progress(f"fitting with {threads} thread(s) (set {THREADS_ENV} to change)")
-        estimator = _estimator(config, examples.names).fit(
+        estimator = _estimator(config, examples.names, target).fit(
             examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
         )
     t2 = time.perf_counter()

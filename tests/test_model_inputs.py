@@ -111,3 +111,36 @@ def test_a_target_model_keeps_every_window_of_other_labels(labelled):
     assert int(np.sum(sparse.y == BACKGROUND)) >= n_down
     # Kept with certainty: their weight (inverse chance of being kept) is 1.
     assert np.sum(sparse.weight[sparse.y == BACKGROUND] == 1.0) >= n_down
+
+
+def test_a_target_model_never_scores_a_louder_call_lower():
+    # TrainingConfig.monotone_excess: scikit-learn's HistGradientBoostingClassifier with
+    # monotonic_cst = +1 on snr_db and every *_excess_db column (scikit-learn user guide,
+    # "Monotonic Constraints"), then isotonic calibration, which is non-decreasing.
+    # Training rows where the calls sit at moderate excess and transients at very high
+    # excess: unconstrained trees learn that very loud means "not a call"; constrained,
+    # the same rows made 15 dB louder never score lower. The unconstrained fit is checked
+    # to break the rule, so the test can fail.
+    from callsieve.classifier.config import TrainingConfig
+    from callsieve.classifier.training import _estimator
+
+    names = model_descriptor_names(SETTINGS)
+    excess = np.array([n == "snr_db" or n.endswith("excess_db") for n in names])
+    rng = np.random.default_rng(0)
+    n_call, n_noise, n_snap = 300, 1200, 300
+    X = rng.normal(0.0, 1.0, (n_call + n_noise + n_snap, len(names))).astype(np.float32)
+    X[:n_call, excess] += 8.0  # calls: moderate excess
+    X[n_call + n_noise :, excess] += 25.0  # transients: very high excess
+    y = np.array(["tarsel-upsweep"] * n_call + [BACKGROUND] * (n_noise + n_snap))
+    groups = np.arange(y.size) % 8
+    louder = X[:n_call].copy()
+    louder[:, excess] += 15.0
+
+    def drop(config: TrainingConfig) -> float:
+        model = _estimator(config, names, "tarsel-upsweep").fit(X, y, groups=groups)
+        j = list(model.classes_).index("tarsel-upsweep")
+        return float(np.max(model.predict_proba(X[:n_call])[:, j] - model.predict_proba(louder)[:, j]))
+
+    params = {"max_iter": 30}
+    assert drop(TrainingConfig(params=params)) <= 1e-9
+    assert drop(TrainingConfig(params=params, monotone_excess=False)) > 0.3
