@@ -74,6 +74,8 @@ class TrainingConfig:
         and ranked no better on our tests; calibration restores probabilities) and
         'balanced' for the random forest
     background_ratio : float, background examples per labelled example
+    target_background_ratio : float, the same for a model of one target (``--target``),
+        whose background is everything else the site holds, a far more varied class
     hard_fraction : float, 0..1, share of the background budget given to the loudest
         in-band background windows (the rest is drawn at random)
     min_overlap : float, 0..1, share of a call (or of the window, for calls longer than
@@ -97,6 +99,7 @@ class TrainingConfig:
     calibration: str = "isotonic"
     class_weight: str = ""
     background_ratio: float = 4.0
+    target_background_ratio: float = 20.0
     hard_fraction: float = 0.5
     min_overlap: float = 0.5
     group_by: str = "auto"
@@ -137,6 +140,7 @@ _CONSTRAINTS = [
     ("calibration", lambda v: v in ("isotonic", "sigmoid"), "'isotonic' or 'sigmoid'"),
     ("class_weight", lambda v: v in ("balanced", "none"), "'balanced' or 'none'"),
     ("background_ratio", lambda v: isinstance(v, int | float) and v > 0, "a number > 0"),
+    ("target_background_ratio", lambda v: isinstance(v, int | float) and v > 0, "a number > 0"),
     ("hard_fraction", lambda v: isinstance(v, int | float) and 0 <= v <= 1, "a number in 0..1"),
     ("min_overlap", lambda v: isinstance(v, int | float) and 0 < v <= 1, "a number in (0, 1]"),
     ("group_by", lambda v: v in ("auto", "hour", "file", "deployment"), "'auto', 'hour', 'file' or 'deployment'"),
@@ -155,6 +159,7 @@ _TABLES = {
     },
     "examples": {
         "background_ratio": "background_ratio",
+        "target_background_ratio": "target_background_ratio",
         "hard_fraction": "hard_fraction",
         "min_overlap": "min_overlap",
     },

@@ -207,6 +207,7 @@ def collect_examples(
     counts: dict[str, dict[str, int]] = {}
     n_described, seconds = 0, 0.0
     keep_classes = {target} if target else None
+    ratio = config.target_background_ratio if target else config.background_ratio
     # The distinct annotated files, for the progress lines.
     annotated = {(s.deployment.name, a.file): s.deployment for s in sets for a in s.annotations}
     durations = {f.name: f.duration_s for s in sets for f in s.deployment.files}
@@ -271,7 +272,7 @@ def collect_examples(
         g_bg = np.concatenate(bg_g) if bg_g else np.empty(0, _KEY_DTYPE)
         idx, weight = _sample_background(
             X_bg[:, snr_col],
-            max(int(config.background_ratio * max(int(np.sum(y_pos != BACKGROUND)), 1)), 1),
+            max(int(ratio * max(int(np.sum(y_pos != BACKGROUND)), 1)), 1),
             config.hard_fraction,
             rng,
         )

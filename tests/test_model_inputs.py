@@ -104,7 +104,7 @@ def test_a_target_model_keeps_every_window_of_other_labels(labelled):
     assert n_down > 50
     from dataclasses import replace
 
-    sparse = collect_examples([lset], settings, replace(config, background_ratio=0.01), target="up")
+    sparse = collect_examples([lset], settings, replace(config, target_background_ratio=0.01), target="up")
     n_up = int(np.sum(sparse.y == "up"))
     assert n_up == int(np.sum(every.y == "up"))
     # The draw alone would give max(0.01 · n_up, 1) background windows.
