@@ -189,3 +189,22 @@ def test_evaluate_reports_the_cascade(labelled, reference, sweep_model, tmp_path
     assert recorded == load_model(sweep_model).summary["cascade"]
     assert recorded["min_recall"] >= CASCADE_RECALL
     assert "cascade: its first stage kept" in capsys.readouterr().out
+
+
+def test_peak_to_peak_can_be_left_out_and_nothing_else_changes(sweep_model, loud_calls):
+    # Scoring leaves out the one waveform descriptor when the model does not read it; the
+    # reference is the full description of the same file.
+    manifest, _ = loud_calls
+    dep = load_deployment(manifest)
+    model = load_model(sweep_model)
+    names = descriptor_names(model.settings)
+    i = names.index("peak_to_peak_db")
+    assert i not in model.estimator.columns
+    with AudioReader(dep.files[0].path, 0) as reader:
+        full = np.concatenate([t.values for t in describe_stream(reader, dep.chain, model.settings)])
+    with AudioReader(dep.files[0].path, 0) as reader:
+        tables = describe_stream(reader, dep.chain, model.settings, peak_to_peak=False)
+        part = np.concatenate([t.values for t in tables])
+    assert np.isnan(part[:, i]).all() and np.isfinite(full[:, i]).all()
+    others = np.arange(len(names)) != i
+    np.testing.assert_array_equal(part[:, others], full[:, others])
