@@ -109,6 +109,15 @@ def format_training_report(report: dict) -> str:
             f"  {c:<16} AP {m['average_precision']:.3f}   P {m['precision_at_0.5']:.3f}   "
             f"R {m['recall_at_0.5']:.3f}   ({m['examples']} windows)"
         )
+    cascade = report.get("cascade")
+    if cascade:
+        lines.append(
+            f"cascade          first stage keeps {cascade['min_recall']:.4f} of the least-kept class's windows "
+            f"(out of fold; target {cascade['target_recall']:g}) and rejects "
+            f"{100 * cascade['background_rejected']:.1f} % of background windows; "
+            + ("used at scoring" if cascade["used_at_scoring"] else "too few to pay: not used at scoring")
+        )
+        lines.append("  recall per class " + ", ".join(f"{c} {v:.4f}" for c, v in sorted(cascade["recall"].items())))
     if "run" in report:
         r = report["run"]
         lines.append(f"experiment run   {r['run_id']} in {r['tracking_uri']}")

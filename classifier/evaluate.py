@@ -374,6 +374,8 @@ def evaluate(
         "labels_not_in_model": labels_not_in_model,
         "classes": per_class,
         "confusion": {"labels": confusion_labels, "counts": confusion.tolist()},
+        # The model's first stage as recorded at training (None: a model without one).
+        "cascade": params.get("cascade"),
         "caution": CAUTION,
         "seconds": round(time.perf_counter() - t0, 1),
     }
@@ -674,6 +676,13 @@ def format_evaluation(metrics: dict[str, Any], target: str | None = None, cautio
             f"{c:<{w}} {m['truth_calls']:>6} {m['average_precision'] or 0:>9.3f} "
             f"{m['baseline']['average_precision'] or 0:>10.3f} {'none' if thr is None else format(thr, '.2f'):>9} "
             f"{rec_txt:>22} {hours:>11}" + ("  (target)" if c == target else "")
+        )
+    cascade = metrics.get("cascade")
+    if cascade:
+        lines.append(
+            f"cascade: its first stage kept {cascade['min_recall']:.4f} of the least-kept class's training "
+            f"windows (out of fold) and rejects {100 * cascade['background_rejected']:.1f} % of background windows"
+            + ("" if cascade.get("used_at_scoring", True) else " (too few to pay: not used at scoring)")
         )
     if metrics["labels_not_in_model"]:
         lines.append("truth labels the model does not know: " + ", ".join(metrics["labels_not_in_model"]))

@@ -271,6 +271,8 @@ class CallModel:
     classes : list of str
     target : str or None, the class the model was trained to find (None: all classes)
     summary : dict, training-set summary and cross-validated metrics
+    cascade : Cascade or None, the first stage that rejects background windows before
+        the full descriptors and the estimator (None: every window is described)
     content_sha256 : str, hash of the estimator and everything above
     """
 
@@ -281,8 +283,10 @@ class CallModel:
         descriptor_names: list[str],
         target: str | None,
         summary: dict[str, Any],
+        cascade: Any = None,
     ) -> None:
         self.estimator = estimator
+        self.cascade = cascade
         self.settings = settings
         self.descriptor_names = list(descriptor_names)
         self.classes = [str(c) for c in estimator.classes_]
@@ -300,7 +304,7 @@ class CallModel:
             "classes": self.classes,
             "target": self.target,
             "summary": self.summary,
-        }
+        } | ({"cascade": self.cascade.summary()} if self.cascade is not None else {})
 
     def check_fits(self, sample_rate_hz: float, where: str) -> None:
         """Refuse data this model cannot describe (band above Nyquist)."""
@@ -312,8 +316,9 @@ class CallModel:
             )
 
 
-def _digest(estimator_bytes: bytes, metadata: dict) -> str:
+def _digest(estimator_bytes: bytes, metadata: dict, cascade_bytes: bytes = b"") -> str:
     h = hashlib.sha256(estimator_bytes)
+    h.update(cascade_bytes)  # empty for a model without a cascade: older hashes hold
     h.update(json.dumps(metadata, sort_keys=True, default=str).encode())
     return h.hexdigest()
 
@@ -323,13 +328,16 @@ def save_model(model: CallModel, path: str | Path) -> str:
     import skops.io as sio  # here, not at import: it costs a second, and workers do not need it
 
     est_bytes = sio.dumps(model.estimator)
+    cascade_bytes = sio.dumps(model.cascade.estimator) if model.cascade is not None else b""
     meta = model.metadata()
-    model.content_sha256 = _digest(est_bytes, meta)
+    model.content_sha256 = _digest(est_bytes, meta, cascade_bytes)
     payload = {
         "estimator": est_bytes,
         "metadata": json.dumps(meta, default=str),
         "content_sha256": model.content_sha256,
     }
+    if cascade_bytes:
+        payload["cascade"] = cascade_bytes
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(path.suffix + ".partial")
@@ -359,12 +367,15 @@ def load_model(path: str | Path) -> CallModel:
             raise InputError(f"{path}: not a callsieve model file (it holds {', '.join(outer_untrusted[:3])})")
         payload = sio.loads(raw, trusted=[])
         est_bytes = payload["estimator"]
-        untrusted = [t for t in sio.get_untrusted_types(data=est_bytes) if t not in TRUSTED_TYPES]
-        if untrusted:
-            raise InputError(
-                f"{path}: refused: the model holds types callsieve does not trust ({', '.join(untrusted[:5])})"
-            )
+        cascade_bytes = payload.get("cascade", b"")
+        for part in (est_bytes, cascade_bytes) if cascade_bytes else (est_bytes,):
+            untrusted = [t for t in sio.get_untrusted_types(data=part) if t not in TRUSTED_TYPES]
+            if untrusted:
+                raise InputError(
+                    f"{path}: refused: the model holds types callsieve does not trust ({', '.join(untrusted[:5])})"
+                )
         estimator = sio.loads(est_bytes, trusted=TRUSTED_TYPES)
+        cascade_estimator = sio.loads(cascade_bytes, trusted=TRUSTED_TYPES) if cascade_bytes else None
         meta = json.loads(payload["metadata"])
     except InputError:
         raise
@@ -372,7 +383,7 @@ def load_model(path: str | Path) -> CallModel:
         raise InputError(f"{path}: not a readable callsieve model file ({type(exc).__name__}: {exc})") from None
     if meta.get("format") != MODEL_FORMAT:
         raise InputError(f"{path}: model format {meta.get('format')!r}, this callsieve reads {MODEL_FORMAT}")
-    if _digest(est_bytes, meta) != payload.get("content_sha256"):
+    if _digest(est_bytes, meta, cascade_bytes) != payload.get("content_sha256"):
         raise InputError(f"{path}: content hash does not match; the file was altered or damaged")
     if meta["descriptor_version"] != DESCRIPTOR_VERSION:
         raise InputError(
@@ -386,6 +397,22 @@ def load_model(path: str | Path) -> CallModel:
         meta["descriptor_names"],
         meta["target"],
         meta["summary"],
+        _cascade(cascade_estimator, meta.get("cascade")),
     )
     model.content_sha256 = payload["content_sha256"]
     return model
+
+
+def _cascade(estimator: Any, described: dict | None) -> Any:
+    """The model file's cascade from its estimator and its recorded operating point."""
+    if estimator is None or described is None:
+        return None
+    from .cascade import Cascade
+
+    return Cascade(
+        estimator,
+        list(described["descriptors"]),
+        float(described["threshold"]),
+        {str(k): float(v) for k, v in described["recall"].items()},
+        float(described["background_rejected"]),
+    )

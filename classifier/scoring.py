@@ -153,6 +153,7 @@ def score_file(
     before: Neighbour | None = None,
     after: Neighbour | None = None,
     frames_listed: int | None = None,
+    cascade: bool = True,
 ) -> FileResult:
     """Detections of one file: describe, predict, pick peaks, measure levels.
 
@@ -173,6 +174,8 @@ def score_file(
     frames_listed : int, optional, samples the file held when the deployment was listed;
         a file that holds another number now (a copy in progress) fails, to be scored
         again when complete, instead of being scored as a part
+    cascade : bool, use the model's first stage (when it has one): windows it rejects
+        are background without their full descriptors, the model or levels
 
     Returns
     -------
@@ -205,7 +208,9 @@ def score_file(
                 parts.insert(0, (before[0], offset - before[1], before[1]))
             if after is not None and _opens(after[0], channel, after[1]):
                 parts.append((after[0], offset + frames, after[1]))
-            return _score_file(model, parts, offset, frames, name, chain, channel, threshold, block_s, t0, gate)
+            return _score_file(
+                model, parts, offset, frames, name, chain, channel, threshold, block_s, t0, gate, cascade
+            )
         except AudioReadError as exc:
             return FileResult(name, "failed", exc.reason, 0, [], time.perf_counter() - t0)
 
@@ -232,6 +237,7 @@ def _score_file(
     block_s: float,
     t0: float,
     gate: bool = True,
+    cascade: bool = True,
 ) -> FileResult:
     settings = model.settings
     names = model.descriptor_names
@@ -239,7 +245,15 @@ def _score_file(
     i_act = names.index("trace_cover_fraction")
     i_snr = names.index("snr_db")
     background = model.classes.index(BACKGROUND) if BACKGROUND in model.classes else None
-    values, segment, noise_psd, starts = [], [], [], []
+    values, segment, noise_psd, starts, passed = [], [], [], [], []
+    # The cascade's first stage decides which windows get full descriptors; it needs a
+    # background class to send the others to.
+    use = cascade and model.cascade is not None and model.cascade.pays and background is not None
+    screen = model.cascade.keep if use else None
+    # The peak-to-peak level costs a band filter over all audio; skipped where the model
+    # does not read it (an absolute level, kept from the model by default).
+    columns = model.estimator.columns
+    peak_to_peak = columns is None or names.index("peak_to_peak_db") in columns
     with SegmentReader(parts, channel) as reader:
         fs = reader.sample_rate_hz
         hop = settings.window_hop_s
@@ -247,8 +261,10 @@ def _score_file(
         k1 = int(np.ceil((offset + frames) / fs / hop)) + _CONTEXT_WINDOWS
         frequency_hz = None
         spectra = MinuteSpectra(fs, chain, offset, frames)
-        for table in describe_stream(reader, chain, settings, block_s, (k0, k1), spectra.add):
+        stream = describe_stream(reader, chain, settings, block_s, (k0, k1), spectra.add, screen, peak_to_peak)
+        for table in stream:
             values.append(table.values)
+            passed.append(table.passed if table.passed is not None else np.ones(table.start_s.size, bool))
             segment.append(table.segment_s)
             noise_psd.append(table.noise_psd)
             starts.append(table.start_s)
@@ -257,7 +273,7 @@ def _score_file(
             return FileResult(name, "done", None, 0, [], time.perf_counter() - t0, 0, _soundscape(spectra))
         # One prediction per file: a boosted model's cost is mostly per call and per tree.
         v = np.concatenate(values)
-        proba = _predict(model, v, background if gate else None, i_act, i_snr)
+        proba = _predict(model, v, background if gate else None, i_act, i_snr, np.concatenate(passed))
         active = v[:, i_act] > 0
         lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
         hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
@@ -302,18 +318,26 @@ def _soundscape(spectra: MinuteSpectra) -> tuple[np.ndarray, np.ndarray, np.ndar
 _PREDICT_ROWS = 65536
 
 
-def _predict(model: CallModel, values: np.ndarray, background: int | None, i_act: int, i_snr: int) -> np.ndarray:
+def _predict(
+    model: CallModel,
+    values: np.ndarray,
+    background: int | None,
+    i_act: int,
+    i_snr: int,
+    passed: np.ndarray | None = None,
+) -> np.ndarray:
     """Calibrated probabilities of every window; gated windows are background unasked.
 
     With ``background`` (its column) given, windows with no trace above the floor and no
-    in-band excess (see GATE_SNR_DB) skip the model.
+    in-band excess (see GATE_SNR_DB) skip the model. Windows the cascade rejected
+    (``passed`` False, NaN descriptors) are background too.
     """
     proba = np.zeros((values.shape[0], len(model.classes)))
-    if background is None:
-        keep = np.ones(values.shape[0], dtype=bool)
-    else:
-        keep = (values[:, i_act] > 0) | (values[:, i_snr] > GATE_SNR_DB)
-        proba[:, background] = 1.0
+    keep = np.ones(values.shape[0], dtype=bool) if passed is None else passed.copy()
+    if background is not None:
+        keep &= (values[:, i_act] > 0) | (values[:, i_snr] > GATE_SNR_DB)
+    if background is not None or not keep.all():
+        proba[:, model.classes.index(BACKGROUND) if background is None else background] = 1.0
     rows = np.flatnonzero(keep)
     for a in range(0, rows.size, _PREDICT_ROWS):
         part = rows[a : a + _PREDICT_ROWS]
@@ -351,6 +375,8 @@ def _open_run(con, model: CallModel, model_path: Path, dep: Deployment, dep_id: 
         "manifest": str(dep.manifest_path.resolve()),
         # Stretches of audio whose verdicts trained the model (`estimate` sets them aside).
         "verified_spans": model.summary.get("verified", {}).get("spans", []),
+        # The cascade's operating point and its out-of-fold cost, for `evaluate`.
+        "cascade": model.summary.get("cascade"),
     }
     cur = con.execute(
         "INSERT INTO runs (run_key, deployment_id, model_sha256, model_path, classes, target, threshold, "

@@ -126,6 +126,11 @@ def log_training_run(
     params["target"] = model.target or "all labels"
     params["classes"] = ",".join(model.classes)
     params["cv_grouping"] = result.validation.get("grouping", "")
+    cascade = model.summary.get("cascade")
+    if cascade is not None:
+        params["cascade.descriptors"] = ",".join(cascade["descriptors"])
+        params["cascade.threshold"] = cascade["threshold"]
+        params["cascade.target_recall"] = cascade["target_recall"]
     out: dict[str, str] = {}
     with mlflow.start_run() as run:
         mlflow.log_params({k: str(v) for k, v in params.items()})
@@ -150,6 +155,10 @@ def log_training_run(
             for key, value in m.items():
                 if key != "examples" and np.isfinite(value):
                     metrics[f"cv_{key.replace('@', '_at_')}.{c}"] = value
+        if cascade is not None:
+            # The first stage's cost in calls (out of fold) and what it saves.
+            metrics |= {f"cascade_recall.{c}": v for c, v in cascade["recall"].items()}
+            metrics["cascade_background_rejected"] = cascade["background_rejected"]
         mlflow.log_metrics({k.replace("0.5", "0_5"): v for k, v in metrics.items()})
         for k, fold in enumerate(val["folds"]):
             for c, m in fold["metrics"].items():

@@ -22,6 +22,7 @@ from callsieve.features.pipeline import describe_file
 from callsieve.features.streaming import AudioReadError
 from sklearn.metrics import average_precision_score, confusion_matrix
 
+from .cascade import fit_cascade
 from .config import TrainingConfig
 from .deployment import Deployment
 from .errors import InputError
@@ -516,6 +517,9 @@ def train_model(
         estimator = _estimator(config, examples.names, target).fit(
             examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
         )
+        cascade = fit_cascade(
+            examples.X, examples.y, examples.weight, estimator.fold_, examples.names, settings, BACKGROUND
+        )
     t2 = time.perf_counter()
     validation = cross_validate(estimator, examples) | {"group_by": config.group_by, "grouping": examples.grouping}
     t3 = time.perf_counter()
@@ -535,8 +539,8 @@ def train_model(
         "hours_described": round(examples.hours_described, 4),
         "config": config.to_dict(),
         "validation": validation,
-    }
-    model = CallModel(estimator, settings, examples.names, target, summary)
+    } | ({"cascade": cascade.summary()} if cascade is not None else {})
+    model = CallModel(estimator, settings, examples.names, target, summary, cascade)
     seconds = {"describe": t1 - t0, "fit_and_cross_validate": t2 - t1, "metrics": t3 - t2}
     return TrainingResult(model, examples, validation, replace(config), seconds, threads)
 
@@ -722,6 +726,7 @@ def train(
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],
         "cv_grouping": result.validation["grouping"],
+        "cascade": result.model.summary.get("cascade"),
         "warnings": [w for d in deployments for w in d.warnings] + training_warnings(sets, result.validation, target),
         "seconds": {k: round(v, 2) for k, v in result.seconds.items()},
         "threads": result.threads,

@@ -18,6 +18,7 @@ from .calibration import RecordingChain, band_pressure_fir
 from .descriptors import DescriptorSettings, describe_windows
 from .levels import power_db
 from .noise import noise_floor_db, noise_floor_steps
+from .screening import frames_of_windows, screen_values
 from .spectrogram import psd_spectrogram
 from .streaming import AudioReader, SegmentReader
 
@@ -41,6 +42,9 @@ class WindowTable:
         each window's main trace (the window itself where it has none)
     noise_psd : np.ndarray [shape=(n, n_freq)], float32, µPa²/Hz, mean noise floor per window
     frequency_hz : np.ndarray [shape=(n_freq,)], Hz, the bins of ``noise_psd``
+    passed : np.ndarray [shape=(n,)], bool, or None; with a screen, the windows it kept
+        (the others have NaN descriptors, a zero noise floor and the whole window as
+        their segment); None without a screen (every window described)
     """
 
     window_index: np.ndarray
@@ -51,6 +55,7 @@ class WindowTable:
     segment_s: np.ndarray
     noise_psd: np.ndarray
     frequency_hz: np.ndarray
+    passed: np.ndarray | None = None
 
 
 def describe_file(
@@ -93,6 +98,8 @@ def describe_stream(
     block_s: float = 600.0,
     window_range: tuple[int, int] | None = None,
     on_samples: Callable[[int, np.ndarray], None] | None = None,
+    screen: Callable[[np.ndarray], np.ndarray] | None = None,
+    peak_to_peak: bool = True,
 ) -> Iterator[WindowTable]:
     """Describe the windows [k0, k1) of an open stream (a file, or consecutive files).
 
@@ -101,10 +108,17 @@ def describe_stream(
     windows on the same grid. Times in the tables are seconds from sample 0.
     ``on_samples(start, samples)`` is given every stretch of samples read, as read (in
     order, overlapping), so other measures need no second read of the audio.
+
+    ``screen(values)`` (a cascade's first stage) is given the
+    :func:`~callsieve.features.screening.screen_values` of every window, shape
+    (n_windows, n_screen), and returns which windows to describe in full (bool); the
+    others get NaN descriptors (``WindowTable.passed``). ``peak_to_peak=False`` leaves
+    the peak-to-peak level (the one waveform descriptor, a band filter over every block)
+    NaN, for a caller whose model does not read it.
     """
     fs = reader.sample_rate_hz
     settings.grid.check_sample_rate(fs)
-    yield from _describe(reader, fs, chain, settings, block_s, window_range, on_samples)
+    yield from _describe(reader, fs, chain, settings, block_s, window_range, on_samples, screen, peak_to_peak)
 
 
 def decimation_factor(sample_rate_hz: int, high_hz: float) -> int:
@@ -134,6 +148,8 @@ def _describe(
     block_s: float,
     window_range: tuple[int, int] | None = None,
     on_samples: Callable[[int, np.ndarray], None] | None = None,
+    screen: Callable[[np.ndarray], np.ndarray] | None = None,
+    peak_to_peak: bool = True,
 ) -> Iterator[WindowTable]:
     grid = settings.grid
     q = decimation_factor(fs, settings.high_hz)
@@ -203,14 +219,24 @@ def _describe(
         used = slice(fa - fr0, fb - fr0)
         noise = noise_floor_db(floor_steps, steps, step, frame_idx[used])
         first = k * m - fa
+        psd_used = spec.psd_db[:, used]
+        passed = None
+        if screen is not None:
+            passed = np.asarray(screen(screen_values(psd_used, noise, spec.frequency_hz, first, settings)), bool)
         # Waveform measures: band-passed pressure at the analysis rate; clipping in the
         # samples as recorded, where one sample at full scale is enough.
-        pressure = signal.oaconvolve(analysed, fir.astype(np.float32), mode="same")
-        p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
+        if peak_to_peak and (passed is None or passed.any()):
+            pressure = signal.oaconvolve(analysed, fir.astype(np.float32), mode="same")
+            p2p = _window_peak_to_peak(pressure, w_start - s0, window_len_a)
+        else:
+            p2p = np.full(k.size, np.nan)
         clipped = _window_clipped(raw, q * w_start - raw0, int(round(settings.window_s * fs)))
-        values, segment, noise_psd = describe_windows(
-            spec.psd_db[:, used], noise, spec.frequency_hz, first, settings, p2p
-        )
+        if passed is None:
+            values, segment, noise_psd = describe_windows(psd_used, noise, spec.frequency_hz, first, settings, p2p)
+        else:
+            values, segment, noise_psd = _describe_passed(
+                psd_used, noise, spec.frequency_hz, first, settings, p2p, passed
+            )
         start_s = w_start / fs_a
         yield WindowTable(
             k,
@@ -221,7 +247,39 @@ def _describe(
             start_s[:, None] + segment,
             noise_psd,
             spec.frequency_hz,
+            passed,
         )
+
+
+def _describe_passed(
+    psd_db: np.ndarray,
+    noise_db: np.ndarray,
+    frequency_hz: np.ndarray,
+    first: np.ndarray,
+    settings: DescriptorSettings,
+    p2p: np.ndarray,
+    passed: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``describe_windows`` of the passed windows only, on the frames they cover.
+
+    Every descriptor of a window is a function of its own frames, so the frames no kept
+    window covers are dropped before the per-frame work; the windows' frames stay
+    contiguous. Rows of rejected windows are NaN (segment: the whole window; noise: 0).
+    """
+    n_w = settings.frames_per_window
+    n_win, n_freq = first.size, frequency_hz.size
+    cols = frames_of_windows(first[passed], n_w, psd_db.shape[1])
+    kept_first = np.searchsorted(cols, first[passed])
+    vals, seg, npsd = describe_windows(
+        psd_db[:, cols], noise_db[:, cols], frequency_hz, kept_first, settings, p2p[passed]
+    )
+    values = np.full((n_win, vals.shape[1]), np.nan, dtype=np.float32)
+    values[passed] = vals
+    segment = np.tile(np.array([0.0, settings.window_s]), (n_win, 1))
+    segment[passed] = seg
+    noise_psd = np.zeros((n_win, n_freq), dtype=np.float32)
+    noise_psd[passed] = npsd
+    return values, segment, noise_psd
 
 
 def _chunk_extremes(x: np.ndarray, bounds: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -9,6 +9,7 @@ IEC 61260-1, so third-octave band levels follow by summing), then into bins of 6
 from __future__ import annotations
 
 import numpy as np
+from scipy import fft as sp_fft
 from scipy import signal
 
 from ._validation import check_positive
@@ -80,7 +81,7 @@ def segment_psd(samples: np.ndarray, sample_rate_hz: int, chain: RecordingChain)
     if count == 0:
         return frequency_hz, np.empty((0, frequency_hz.size))
     x = samples[: count * n].reshape(count, n) * window.astype(np.float32)
-    spectrum = np.fft.rfft(x, axis=1)
+    spectrum = sp_fft.rfft(x, axis=1)  # single precision stays single (see psd_spectrogram)
     power = spectrum.real.astype(np.float64) ** 2 + spectrum.imag.astype(np.float64) ** 2
     scale = np.full(frequency_hz.shape, 2.0 / (sample_rate_hz * np.sum(window**2)))
     scale[0] /= 2.0

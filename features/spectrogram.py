@@ -168,8 +168,18 @@ def psd_spectrogram(
         return Spectrogram(empty, f_grid, frames, np.empty(0), grid)
     starts = grid.frame_start_samples(frames, fs) - first_sample
     window = signal.get_window(grid.window, n_win, fftbins=True).astype(np.float32)
-    segments = sliding_window_view(x, n_win)[starts] * window
-    spectrum = np.fft.rfft(segments, axis=1)
+    frames_view = sliding_window_view(x, n_win)
+    step = int(starts[1] - starts[0]) if starts.size > 1 else 1
+    if step > 0 and np.all(np.diff(starts) == step):
+        # Frames on a whole-sample hop: a strided view, not a gathered copy (3x faster).
+        segments = frames_view[starts[0] :: step][: starts.size] * window
+    else:
+        segments = frames_view[starts] * window
+    # numpy transforms float32 in double precision and rounds the result to complex64;
+    # doing that explicitly gives the same values at half the cost. (scipy's single-
+    # precision FFT is faster still, but moves PSD values by up to tenths of a dB in
+    # bins near a null, enough to change a trained model and its AP by a few 0.01.)
+    spectrum = np.fft.rfft(segments.astype(np.float64), axis=1).astype(np.complex64)
     f_fft = np.fft.rfftfreq(n_win, 1.0 / fs)
     exact = abs(fs / grid.resolution_hz - n_win) < 1e-6
     if exact:
