@@ -190,7 +190,8 @@ def recall_by_level_figure(rows: list[dict], classes: list[str], where: str):
                 y = np.array([float(r["recall"]) if r["calls"] else np.nan for r in sel])
                 lo = np.array([float(r["recall_low"]) if r["calls"] else np.nan for r in sel])
                 hi = np.array([float(r["recall_high"]) if r["calls"] else np.nan for r in sel])
-                ax.errorbar(x, y, yerr=[y - lo, hi - y], marker="o", markersize=4, capsize=2, color="C0")
+                err = np.maximum([y - lo, hi - y], 0.0)  # rounded bounds may pass the point by a hair
+                ax.errorbar(x, y, yerr=err, marker="o", markersize=4, capsize=2, color="C0")
                 full = [r for r in sel if r["calls"]]
                 ax.set_xlim(float(full[0]["low"]), float(full[-1]["high"]))
                 for xi, r in zip(x, sel, strict=True):
@@ -261,6 +262,9 @@ def confidence_calibration_figure(strata: list[dict], logistic: dict | None, lab
         x = np.array([s["mean_confidence"] for s in rows])
         y = np.array([s["precision"] for s in rows])
         err = np.array([[s["precision"] - s["precision_low"], s["precision_high"] - s["precision"]] for s in rows]).T
+        # Bounds are rounded for the JSON; at a precision of 0 or 1 the rounding can put a
+        # bound a hair beyond the point, which matplotlib refuses as a negative error bar.
+        err = np.maximum(err, 0.0)
         ax.errorbar(x, y, yerr=err, fmt="o", color="black", capsize=3, label="strata (Wilson 95 %)")
     if logistic is not None:
         c = np.linspace(0.01, 0.999, 200)

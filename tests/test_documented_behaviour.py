@@ -451,7 +451,9 @@ def test_a_neighbour_that_cannot_be_read_counts_as_a_gap(labelled, sweep_model, 
     model = load_model(sweep_model)
     for k in (0, 2):
         alone = score_file(model, paths[k], paths[k].name, dep.chain, dep.channel, 0.1)
-        assert _stored_rows(db, paths[k].name) == alone.rows
+        assert sorted(_stored_rows(db, paths[k].name)) == sorted(
+            alone.rows
+        )  # one set; calls of two classes may share a start
     assert _stored_rows(db, first) or _stored_rows(db, third)  # the comparison is not of two empty lists
 
 
@@ -482,7 +484,9 @@ def test_a_neighbour_that_becomes_unreadable_after_the_listing_counts_as_a_gap(
     dep = listed(man)
     for k in (0, 2):
         alone = score_file(model, paths[k], paths[k].name, dep.chain, dep.channel, 0.1)
-        assert _stored_rows(db, paths[k].name) == alone.rows
+        assert sorted(_stored_rows(db, paths[k].name)) == sorted(
+            alone.rows
+        )  # one set; calls of two classes may share a start
 
 
 # --- docs/formats.md §1: the nearest known name for an unknown field ---
