@@ -23,6 +23,7 @@ __all__ = [
     "is_absolute_level",
     "describe_windows",
     "subband_edges_hz",
+    "subband_bin_masks",
     "active_threshold_db",
 ]
 
@@ -141,6 +142,24 @@ def subband_edges_hz(settings: DescriptorSettings) -> np.ndarray:
     """Edges (Hz) of the equal log-width sub-bands; ``n_subbands + 1`` values."""
     low = max(settings.low_hz, settings.resolution_hz)
     return np.geomspace(low, settings.high_hz, settings.n_subbands + 1)
+
+
+def subband_bin_masks(frequency_hz: np.ndarray, settings: DescriptorSettings) -> np.ndarray:
+    """Bins of each sub-band [shape=(n_subbands, n_freq)], bool.
+
+    A bin belongs to the sub-band its centre falls in (the top edge closes the last
+    sub-band); a sub-band narrower than a bin takes the bin nearest its centre.
+    """
+    f = np.asarray(frequency_hz, dtype=np.float64)
+    df = float(f[1] - f[0])
+    edges = subband_edges_hz(settings)
+    masks = []
+    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
+        sel = (f >= lo - df / 2) & (f < hi + (df / 2 if hi == edges[-1] else -df / 2))
+        if not np.any(sel):
+            sel = np.abs(f - np.sqrt(lo * hi)) == np.min(np.abs(f - np.sqrt(lo * hi)))
+        masks.append(sel)
+    return np.array(masks)
 
 
 # name, unit, meaning
@@ -380,12 +399,8 @@ def describe_windows(
     frame_excess = np.maximum(band_p - band_n, 0.0)
     duration90 = _excess_core_duration(_window_view(frame_excess, first, n_w), hop)
 
-    edges = subband_edges_hz(settings)
     sub, frame_sub_p, frame_sub_n = [], [], []
-    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
-        sel = (f >= lo - df / 2) & (f < hi + (df / 2 if hi == edges[-1] else -df / 2))
-        if not np.any(sel):
-            sel = np.abs(f - np.sqrt(lo * hi)) == np.min(np.abs(f - np.sqrt(lo * hi)))
+    for sel in subband_bin_masks(f, settings):
         sp = mean_psd[sel].sum(axis=0) * df
         sn = mean_noise[sel].sum(axis=0) * df
         fp = p_lin[sel].sum(axis=0)  # per frame; the bin width cancels in the ratios

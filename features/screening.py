@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from .descriptors import DescriptorSettings, subband_edges_hz
+from .descriptors import DescriptorSettings, subband_bin_masks
 
 __all__ = ["screen_names", "screen_values", "frames_of_windows"]
 
@@ -24,20 +24,6 @@ def screen_names(settings: DescriptorSettings) -> list[str]:
     """Names of the screen's descriptors, in column order (all are descriptor names)."""
     k = range(1, settings.n_subbands + 1)
     return ["snr_db", *(f"subband{i}_excess_db" for i in k), *(f"subband{i}_peak_excess_db" for i in k)]
-
-
-def _subband_masks(frequency_hz: np.ndarray, settings: DescriptorSettings) -> np.ndarray:
-    """Bins of each sub-band [shape=(n_sub, n_freq)], bool, as ``describe_windows`` takes them."""
-    f = np.asarray(frequency_hz, dtype=np.float64)
-    df = float(f[1] - f[0])
-    edges = subband_edges_hz(settings)
-    masks = []
-    for lo, hi in zip(edges[:-1], edges[1:], strict=True):
-        sel = (f >= lo - df / 2) & (f < hi + (df / 2 if hi == edges[-1] else -df / 2))
-        if not np.any(sel):
-            sel = np.abs(f - np.sqrt(lo * hi)) == np.min(np.abs(f - np.sqrt(lo * hi)))
-        masks.append(sel)
-    return np.array(masks)
 
 
 def screen_values(
@@ -64,7 +50,7 @@ def screen_values(
     """
     n_w = settings.frames_per_window
     first = np.asarray(window_first_frame, dtype=np.int64)
-    masks = _subband_masks(frequency_hz, settings)
+    masks = subband_bin_masks(frequency_hz, settings)
     df = float(frequency_hz[1] - frequency_hz[0])
     # Linear power summed per sub-band with one matrix product each (the sub-bands tile
     # the band, so the band's power is their sum); float32 as in describe_windows.
