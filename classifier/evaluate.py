@@ -385,6 +385,7 @@ def evaluate(
     _write_csv(out / "thresholds.csv", table_rows)
     _write_csv(out / "recall_by_level.csv", recall_rows)
     _write_matches(out / "matches.csv", dets, match, truth)
+    _write_truth_calls(out / "truth_calls.csv", dets, match, truth, t_rl, t_snr)
     where = f"{run['deployment']}, run {run_id}"
     figures = _figures(out, curves, per_class, recall_rows, confusion_labels, confusion, where)
     logged = _log_to_mlflow(run["model_sha256"], run_id, out, metrics, tracking_uri)
@@ -556,6 +557,49 @@ def _write_matches(path: Path, dets: dict[str, Any], match: np.ndarray, truth: l
                     dets["label"][k],
                     dets["confidence"][k],
                     truth[match[k]].row if match[k] >= 0 else "",
+                ]
+            )
+
+
+def _write_truth_calls(
+    path: Path, dets: dict[str, Any], match: np.ndarray, truth: list, level_db: np.ndarray, snr_db: np.ndarray
+) -> None:
+    """Each judged truth call, its measured levels and the detection that found it (if any).
+
+    The missed calls, with their received level and SNR, are what an analyst looks at
+    first: whether they were audible at all, or of a kind the model was never shown.
+    """
+    found = np.full(len(truth), -1, dtype=np.int64)
+    hit = np.flatnonzero(match >= 0)
+    found[match[hit]] = hit
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(
+            [
+                "truth_row",
+                "file",
+                "start_s",
+                "end_s",
+                "label",
+                "received_level_db",
+                "snr_db",
+                "detection_id",
+                "confidence",
+            ]
+        )
+        for i, a in enumerate(truth):
+            k = int(found[i])
+            w.writerow(
+                [
+                    a.row,
+                    a.file,
+                    a.start_s,
+                    a.end_s,
+                    a.label,
+                    "" if not np.isfinite(level_db[i]) else float(level_db[i]),
+                    "" if not np.isfinite(snr_db[i]) else float(snr_db[i]),
+                    int(dets["detection_id"][k]) if k >= 0 else "",
+                    dets["confidence"][k] if k >= 0 else "",
                 ]
             )
 

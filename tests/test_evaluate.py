@@ -62,6 +62,26 @@ def test_average_precision_agrees_with_sklearn_on_the_matched_list(labelled, eva
         assert m["average_precision"] == pytest.approx(expected, abs=1e-9)
 
 
+def test_the_truth_call_table_agrees_with_the_matches_and_the_level_table(evaluated):
+    # docs/evaluation.md §2: truth_calls.csv holds every judged call once, the detection
+    # that matched it (the same pairs as matches.csv) and the SNR recall_by_level.csv bins.
+    out, metrics = evaluated
+    calls = list(csv.DictReader(open(out / "truth_calls.csv")))
+    assert len(calls) == sum(m["truth_calls"] for m in metrics["classes"].values())
+    assert len({r["truth_row"] for r in calls}) == len(calls)
+    pairs = {(r["truth_row"], r["detection_id"]) for r in calls if r["detection_id"]}
+    matched = {(r["truth_row"], r["detection_id"]) for r in csv.DictReader(open(out / "matches.csv")) if r["truth_row"]}
+    assert pairs == matched and pairs
+    levels = [r for r in csv.DictReader(open(out / "recall_by_level.csv")) if r["measure"] == "snr_db"]
+    for label in metrics["classes"]:
+        snr = np.array([float(r["snr_db"]) for r in calls if r["label"] == label])
+        bins = [r for r in levels if r["label"] == label]
+        edges = np.array([float(r["low"]) for r in bins] + [float(bins[-1]["high"])])
+        # Values beyond the edges fall in the end bins (recall_by_level.csv's rule).
+        counts, _ = np.histogram(np.clip(snr, edges[0], edges[-1] - 1e-9), edges)
+        assert counts.tolist() == [int(r["calls"]) for r in bins]
+
+
 def test_model_beats_the_energy_baseline_on_up_and_down_sweeps(evaluated):
     # An energy detector cannot tell an up-sweep from a down-sweep in the same band: at
     # best about half its events are of either class. The model was trained on these.
