@@ -386,7 +386,7 @@ def _estimator(config: TrainingConfig, names: list[str] | None = None, target: s
     # The model learns from relative descriptors only; absolute levels stay in the rows
     # (and in the outputs) but would teach it the training site's noise and ranges.
     columns = None if names is None else [i for i, n in enumerate(names) if not is_absolute_level(n)]
-    params = config.estimator_params
+    params = config.target_estimator_params if target else config.estimator_params
     if config.monotone_excess and target and config.kind == "gradient-boosting" and names is not None:
         params = params | {"monotonic_cst": [1 if _is_excess(names[i]) else 0 for i in columns]}
     return CallClassifier(

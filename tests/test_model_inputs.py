@@ -144,3 +144,46 @@ def test_a_target_model_never_scores_a_louder_call_lower():
     params = {"max_iter": 30}
     assert drop(TrainingConfig(params=params)) <= 1e-9
     assert drop(TrainingConfig(params=params, monotone_excess=False)) > 0.3
+
+
+def test_a_target_model_splits_on_half_the_descriptors_and_a_model_of_every_label_on_all():
+    # TrainingConfig.target_params: one-target gradient-boosted models take scikit-learn's
+    # max_features = 0.5 (HistGradientBoostingClassifier, "proportion of randomly chosen
+    # features in each and every node split"); a model of every label keeps 1.0, and a
+    # configuration's [model.target_params] wins over the default.
+    from callsieve.classifier.config import TrainingConfig
+    from callsieve.classifier.training import _estimator
+
+    names = model_descriptor_names(SETTINGS)
+    rng = np.random.default_rng(1)
+    X = rng.normal(0.0, 1.0, (400, len(names))).astype(np.float32)
+    X[:100, names.index("trace_sweep_rate_hz_per_s")] += 3.0
+    y = np.array(["tarsel-upsweep"] * 100 + [BACKGROUND] * 300)
+    groups = np.arange(y.size) % 4
+    one = _estimator(TrainingConfig(params={"max_iter": 10}), names, "tarsel-upsweep").fit(X, y, groups=groups)
+    every = _estimator(TrainingConfig(params={"max_iter": 10}), names, None).fit(X, y, groups=groups)
+    assert one.estimator_.max_features == 0.5
+    assert every.estimator_.max_features == 1.0
+    mine = TrainingConfig(params={"max_iter": 10}, target_params={"max_features": 1.0})
+    assert _estimator(mine, names, "tarsel-upsweep").fit(X, y, groups=groups).estimator_.max_features == 1.0
+
+
+@pytest.mark.parametrize(
+    "text, says",
+    [
+        ("[model.target_params]\nmax_features = 7.0\n", "max_features"),
+        ("[model.params]\nlearning_rate = -1.0\n", "learning_rate"),
+        ("[model]\ntarget_params = 3\n", "target_params must be a table"),
+        ("[model.target_params]\nmax_feature = 0.5\n", "max_feature are not parameters"),
+    ],
+)
+def test_a_configuration_scikit_learn_would_refuse_is_refused_before_any_audio_is_read(tmp_path, text, says):
+    from callsieve.classifier.config import load_training_config
+    from callsieve.classifier.errors import InputError
+
+    path = tmp_path / "bad.toml"
+    path.write_text(text)
+    with pytest.raises(InputError) as caught:
+        load_training_config(path)
+    message = str(caught.value)
+    assert says in message and str(path) in message and "\n" not in message
