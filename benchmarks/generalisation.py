@@ -26,6 +26,7 @@ training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import platform
@@ -34,6 +35,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Iterator
 from datetime import UTC, datetime
 from pathlib import Path
 
@@ -80,6 +82,37 @@ def _cli(args: list[str], cwd: Path, log: Path) -> float:
     return seconds
 
 
+def hard_scenario(folder: Path, seed: int, hours: float) -> tuple[dict, float]:
+    """The hard preset written into ``folder / "scenario"``, or the one an earlier run wrote
+    there for the same seed and hours; returns its summary and the seconds it took."""
+    from callsieve.classifier.scenario import write_scenario
+
+    kept = folder / "scenario-summary.json"
+    t0 = time.perf_counter()
+    if kept.exists() and json.loads(kept.read_text()).get("_written_for") == [seed, hours]:
+        summary = json.loads(kept.read_text())
+    else:
+        summary = write_scenario(folder / "scenario", seed=seed, hours=hours, preset="hard")
+        kept.write_text(json.dumps(summary | {"_written_for": [seed, hours]}, default=str))
+    return summary, time.perf_counter() - t0
+
+
+@contextlib.contextmanager
+def seed_folder(root: Path | None, name: str, prefix: str) -> Iterator[Path]:
+    """``root / name`` emptied of everything but a scenario written there earlier (kept), or,
+    without ``root``, a temporary folder removed afterwards."""
+    if root is None:
+        with tempfile.TemporaryDirectory(prefix=prefix) as tmp:
+            yield Path(tmp)
+        return
+    folder = root / name
+    folder.mkdir(parents=True, exist_ok=True)
+    for old in folder.iterdir():  # everything but the scenario, which is used again
+        if old.name not in ("scenario", "scenario-summary.json"):
+            shutil.rmtree(old) if old.is_dir() else old.unlink()
+    yield folder
+
+
 def run_seed(
     seed: int, folder: Path, hours: float, jobs: int, config: Path | None = None, threshold: float | None = None
 ) -> dict:
@@ -88,18 +121,10 @@ def run_seed(
     A scenario already written in ``folder`` by an earlier run (same seed and hours) is
     used again, so that trials of training settings compare on the same recordings.
     """
-    from callsieve.classifier.scenario import CONFUSER_LABELS, write_scenario
+    from callsieve.classifier.scenario import CONFUSER_LABELS
 
     t_seed = time.perf_counter()
-    scen = folder / "scenario"
-    kept = folder / "scenario-summary.json"
-    t0 = time.perf_counter()
-    if kept.exists() and json.loads(kept.read_text()).get("_written_for") == [seed, hours]:
-        summary = json.loads(kept.read_text())
-    else:
-        summary = write_scenario(scen, seed=seed, hours=hours, preset="hard")
-        kept.write_text(json.dumps(summary | {"_written_for": [seed, hours]}, default=str))
-    scenario_s = time.perf_counter() - t0
+    summary, scenario_s = hard_scenario(folder, seed, hours)
     target = summary["target_label"]
     tracking = f"sqlite:///{(folder / 'mlflow.db').resolve()}"
     log = folder / "log.txt"
@@ -358,16 +383,8 @@ def main() -> None:
 
     results = []
     for seed in args.seeds:
-        if args.folder is not None:
-            folder = args.folder / f"seed-{seed}"
-            folder.mkdir(parents=True, exist_ok=True)
-            for old in folder.iterdir():  # everything but the scenario, which is used again
-                if old.name not in ("scenario", "scenario-summary.json"):
-                    shutil.rmtree(old) if old.is_dir() else old.unlink()
+        with seed_folder(args.folder, f"seed-{seed}", f"callsieve-hard-{seed}-") as folder:
             results.append(run_seed(seed, folder, args.hours, args.jobs, **trial))
-        else:
-            with tempfile.TemporaryDirectory(prefix=f"callsieve-hard-{seed}-") as tmp:
-                results.append(run_seed(seed, Path(tmp), args.hours, args.jobs, **trial))
         r = results[-1]
         print(
             f"seed {seed}: AP {r['average_precision']}, recall at precision 0.9 {r['recall_at_precision_0.9']}, "
@@ -387,16 +404,8 @@ def main() -> None:
         print(_table(results, SURVEY))
     demo = None
     if args.demo:
-        if args.folder is not None:
-            folder = args.folder / "demo"
-            folder.mkdir(parents=True, exist_ok=True)
-            for old in folder.iterdir():
-                if old.name not in ("scenario", "scenario-summary.json"):
-                    shutil.rmtree(old) if old.is_dir() else old.unlink()
+        with seed_folder(args.folder, "demo", "callsieve-demo-") as folder:
             demo = run_demo_site(folder, args.jobs, **trial)
-        else:
-            with tempfile.TemporaryDirectory(prefix="callsieve-demo-") as tmp:
-                demo = run_demo_site(Path(tmp), args.jobs, **trial)
         print()
         print(
             f"Demo survey site (seed 7, 12 h), same settings: target AP {demo['average_precision']:.3f}; "
