@@ -100,6 +100,8 @@ class ExampleSet:
     windows_described: int = 0
     hours_described: float = 0.0
     grouping: str = ""  # what the cross-validation groups really are
+    # Examples from files with only partial (verified) rows: stretches a model chose.
+    partial: np.ndarray | None = None
 
 
 def _nice_resolution(target_hz: float) -> float:
@@ -204,7 +206,7 @@ def collect_examples(
     names = descriptor_names(settings)
     rng = np.random.default_rng(config.seed)
     snr_col = names.index("snr_db")
-    parts_X, parts_y, parts_w, parts_g, parts_s = [], [], [], [], []
+    parts_X, parts_y, parts_w, parts_g, parts_s, parts_p = [], [], [], [], [], []
     counts: dict[str, dict[str, int]] = {}
     n_described, seconds = 0, 0.0
     keep_classes = {target} if target else None
@@ -220,7 +222,7 @@ def collect_examples(
         for a in lset.annotations:
             by_file.setdefault(a.file, []).append(a)
         files = {f.name: f for f in dep.files}
-        pos_X, pos_y, pos_g = [], [], []
+        pos_X, pos_y, pos_g, pos_p = [], [], [], []
         bg_X, bg_g = [], []
         for name in sorted(by_file):
             rec = files[name]
@@ -239,7 +241,8 @@ def collect_examples(
             label, clear = _assign(start, end, notes, config.min_overlap, keep_classes)
             group = _group_keys(dep, rec, start)
             verified_no = np.zeros(label.size, dtype=bool)
-            if all(a.partial for a in notes):
+            partial = all(a.partial for a in notes)
+            if partial:
                 # Only the verified stretches of this file are known: windows clear of them
                 # are not background, and a stretch verified as no call is a hard negative.
                 verified_no = (label == BACKGROUND) & ~clear
@@ -253,6 +256,7 @@ def collect_examples(
             pos_X += [values[pos], values[other]]
             pos_y += [label[pos], np.full(int(other.sum()), BACKGROUND, dtype=object)]
             pos_g += [group[pos], group[other]]
+            pos_p.append(np.full(int(pos.sum() + other.sum()), partial))
             bg = label == BACKGROUND
             bg_X.append(values[bg])
             bg_g.append(group[bg])
@@ -282,6 +286,8 @@ def collect_examples(
         parts_w += [np.ones(len(y_pos)), weight]
         parts_g += [g_pos, g_bg[idx]]
         parts_s += [np.full(len(y_pos) + idx.size, lset.name, dtype=object)]
+        # Background is drawn only from complete files (partial files give none).
+        parts_p += [np.concatenate(pos_p) if pos_p else np.zeros(0, bool), np.zeros(idx.size, bool)]
         counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size + np.sum(y_pos == BACKGROUND))}
     X = np.concatenate(parts_X).astype(np.float32)
     y = np.concatenate(parts_y).astype(str)
@@ -302,6 +308,7 @@ def collect_examples(
         n_described,
         seconds / 3600.0,
         grouping,
+        np.concatenate(parts_p).astype(bool),
     )
 
 
@@ -469,6 +476,34 @@ class TrainingResult:
     threads: int = 1  # BLAS/OpenMP threads of the fit
 
 
+def labels_for_settings(notes: list[Annotation], target: str | None = None) -> list[Annotation]:
+    """The labels band, resolution and window are chosen from (:func:`choose_settings`).
+
+    Those of ``target`` (all, without one). Verified rows carry the boxes of detections, a
+    model's own extents, not an analyst's: where analysts' complete tables hold any, only
+    theirs count, so that retraining on verdicts describes windows as the parent model did.
+    """
+    chosen = [a for a in notes if target is None or a.label == target]
+    drawn = [a for a in chosen if not a.partial]
+    return drawn or chosen
+
+
+def calibration_weight(examples: ExampleSet) -> np.ndarray:
+    """Weights of the probability calibration: the examples' own, but none for verified ones.
+
+    Verified stretches were chosen by a model, mostly among its confident detections, so
+    they hold far more calls than the recordings do. They teach the trees to rank; were
+    they also to set the calibration, a model retrained on a few hundred verified calls
+    would give every window a higher confidence than the recordings warrant, and the
+    thresholds chosen on the parent model would not carry over. Where every example is
+    verified, there is nothing else to calibrate on, and all are used.
+    """
+    partial = examples.partial
+    if partial is None or not partial.any() or partial.all():
+        return examples.weight
+    return np.where(partial, 0.0, examples.weight)
+
+
 def train_model(
     sets: list[LabelledSet],
     config: TrainingConfig,
@@ -492,7 +527,7 @@ def train_model(
     labels = sorted({a.label for a in all_notes})
     if target is not None and target not in labels:
         raise InputError(f"--target {target!r} is not a label of the tables (labels: {', '.join(labels)})")
-    chosen_from = [a for a in all_notes if target is None or a.label == target]
+    chosen_from = labels_for_settings(all_notes, target)
     rate = min(s.deployment.sample_rate_hz for s in sets)
     try:
         settings = choose_settings(chosen_from, rate, config.descriptors)
@@ -515,7 +550,7 @@ def train_model(
         if progress:
             progress(f"fitting with {threads} thread(s) (set {THREADS_ENV} to change)")
         estimator = _estimator(config, examples.names, target).fit(
-            examples.X, examples.y, sample_weight=examples.weight, groups=examples.groups
+            examples.X, examples.y, sample_weight=calibration_weight(examples), groups=examples.groups
         )
         cascade = fit_cascade(
             examples.X, examples.y, examples.weight, estimator.fold_, examples.names, settings, BACKGROUND
@@ -536,6 +571,8 @@ def train_model(
         "examples_per_set": examples.counts,
         "examples": dict(Counter(examples.y.tolist())),
         "windows_described": examples.windows_described,
+        # Verified examples rank but do not calibrate (see calibration_weight).
+        "calibration_examples": int(np.sum(calibration_weight(examples) > 0)),
         "hours_described": round(examples.hours_described, 4),
         "config": config.to_dict(),
         "validation": validation,

@@ -100,7 +100,9 @@ def test_partial_rows_teach_their_own_stretches_and_nothing_else(labelled, sweep
     assert int((ex_full.y == BACKGROUND).sum()) > n_bg
 
 
-def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(judged, labelled, tmp_path, capsys):
+def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(
+    judged, labelled, sweep_model, tmp_path, capsys
+):
     """export-labels -> train with the original table plus the verified one -> score: the
     model and the run name the verified stretches, and a sample of the new run does not count
     verdicts on them."""
@@ -119,6 +121,8 @@ def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(judg
     report = train([manifest], [labels, verified], model, config_path=config_path, track=False)
     assert report["verified"]["stretches"] == 4 and report["verified"]["runs"] == ["1"]
     assert load_model(model).summary["verified"]["parent_models"]  # the parent model's hash
+    # Band and window still come from the analysts' table (see the next test).
+    assert load_model(model).settings == load_model(sweep_model).settings
     summary = score_deployment(model, manifest, db)
     assert summary["run_id"] == 2
     con = open_store(db, create=False)
@@ -152,3 +156,57 @@ def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(judg
     r = estimate_run(db, run_id=2)
     assert r["trained_on_verified"]["verdicts_set_aside"] == 1
     assert r["verdicts"]["yes"] == 0
+
+
+def test_verified_calls_rank_but_do_not_inflate_the_calibrated_confidence():
+    """Verified stretches are mostly a model's confident detections, far richer in calls
+    than the recordings: they train the trees but are left out of the calibration
+    (training.calibration_weight). So the out-of-fold confidences on the completely
+    annotated windows still average to the share of those windows that hold the call
+    (isotonic regression keeps the weighted mean of what it is fitted to: the
+    pool-adjacent-violators solution, Barlow et al. 1972, Statistical Inference under
+    Order Restrictions, ch. 1; from memory). With the verified rows in the calibration
+    too, the same average is biased upward; the test checks both, so it can fail."""
+    import numpy as np
+    from callsieve.classifier.model import CallClassifier
+    from callsieve.classifier.training import ExampleSet, calibration_weight
+
+    rng = np.random.default_rng(4)
+    # Complete tables: 5 % of windows hold the call; verified stretches: 70 %. One
+    # descriptor, the classes overlapping (a unit shift of unit-variance noise).
+    n_full, n_verified = 4000, 600
+    y = np.concatenate([rng.random(n_full) < 0.05, rng.random(n_verified) < 0.7])
+    X = (rng.normal(0.0, 1.0, y.size) + 1.0 * y)[:, None].astype(np.float32)
+    labels = np.where(y, "up", BACKGROUND)
+    partial = np.arange(y.size) >= n_full
+    groups = np.arange(y.size) % 8
+    examples = ExampleSet(X, labels, np.ones(y.size), groups, np.full(y.size, "t"), ["x"], partial=partial)
+
+    def bias(weight: np.ndarray) -> float:
+        model = CallClassifier(params={"max_iter": 20}, folds=4).fit(X, labels, sample_weight=weight, groups=groups)
+        j = list(model.classes_).index("up")
+        full = ~partial
+        return float(np.mean(model.oof_proba_[full, j]) - np.mean(y[full]))
+
+    assert np.array_equal(calibration_weight(examples) == 0, partial)
+    fixed, inflated = bias(calibration_weight(examples)), bias(examples.weight)
+    assert abs(fixed) < 0.01 < inflated
+    # Where every example is verified, they are all the calibration has.
+    only = ExampleSet(X, labels, np.ones(y.size), groups, np.full(y.size, "t"), ["x"], partial=np.ones(y.size, bool))
+    assert np.array_equal(calibration_weight(only), only.weight)
+
+
+def test_verified_boxes_do_not_move_the_band_or_the_window():
+    """A verified row's box is a detection's extent; retraining takes band, resolution and
+    window from the analysts' complete tables, as the parent model did."""
+    from callsieve.classifier.labels import Annotation
+    from callsieve.classifier.training import choose_settings, labels_for_settings
+
+    drawn = [Annotation("d", "f", 10.0 * k, 10.0 * k + 1.3, "up", 60.0, 200.0, k + 2) for k in range(20)]
+    # Detections of the same calls, boxed wider and longer than the analysts did.
+    boxes = [Annotation("d", "g", 10.0 * k, 10.0 * k + 2.4, "up", 40.0, 320.0, k + 2, True) for k in range(20)]
+    parent = choose_settings(drawn, 2000)
+    assert choose_settings(drawn + boxes, 2000) != parent  # the boxes would move them
+    assert choose_settings(labels_for_settings(drawn + boxes, "up"), 2000) == parent
+    # Verified rows alone: they are all there is.
+    assert labels_for_settings(boxes, "up") == boxes
