@@ -228,6 +228,8 @@ def evaluate(
         dets = _detections(con, run_id, files, judged)
     finally:
         con.close()
+    named = {a.file for a in truth}
+    unnamed = [f for f in judged if f not in named] if complete_truth else []
     b_file, b_start, b_end, b_score = audio["baseline"]
     labels_not_in_model = sorted({a.label for a in truth} - set(classes))
     t_file = [a.file for a in truth]
@@ -359,6 +361,13 @@ def evaluate(
         "complete_truth": complete_truth,
         "files_judged": len(judged),
         "files_not_scored": not_scored,
+        # With --complete-truth, judged files the table names no call in: their detections
+        # are all false. Said on the terminal, since a table cut to some files turns every
+        # detection in the others into a false positive.
+        "files_without_truth_calls": unnamed,
+        "detections_in_files_without_truth_calls": int(
+            np.isin(dets["file_code"], [file_code[f] for f in unnamed]).sum()
+        ),
         "files_unreadable": sorted({n for n, _ in unreadable} | audio["failed"]),
         "recorded_hours": round(sum(float(files[f]["duration_s"]) for f in judged) / 3600.0, 4),
         "effort_hours": len(effort),
@@ -727,6 +736,13 @@ def format_evaluation(metrics: dict[str, Any], target: str | None = None, cautio
             f"cascade: its first stage kept {cascade['min_recall']:.4f} of the least-kept class's training "
             f"windows (out of fold) and rejects {100 * cascade['background_rejected']:.1f} % of background windows"
             + ("" if cascade.get("used_at_scoring", True) else " (too few to pay: not used at scoring)")
+        )
+    unnamed = metrics.get("files_without_truth_calls") or []
+    if unnamed:
+        lines.append(
+            f"complete truth: {len(unnamed)} of the {metrics['files_judged']} files judged hold no truth call, so "
+            f"their {metrics['detections_in_files_without_truth_calls']} detections all count as false "
+            "(without --complete-truth only the files the table names are judged)"
         )
     if metrics["labels_not_in_model"]:
         lines.append("truth labels the model does not know: " + ", ".join(metrics["labels_not_in_model"]))

@@ -21,7 +21,7 @@ import soundfile as sf
 from callsieve.classifier.cli import main
 from callsieve.classifier.deployment import load_deployment
 from callsieve.classifier.errors import InputError
-from callsieve.classifier.evaluate import _curve_points
+from callsieve.classifier.evaluate import _curve_points, format_evaluation
 from callsieve.classifier.evaluation import precision_recall
 from callsieve.classifier.export import CAUTION, DETECTION_COLUMNS
 from callsieve.classifier.model import load_model, save_model
@@ -246,6 +246,14 @@ def test_complete_truth_makes_detections_in_unnamed_files_false_positives(labell
     assert len(extra) == sum(per_file[f] for f in unnamed)
     assert all(r["truth_row"] == "" for r in extra)
     assert sum(c["detections"] for c in m1["classes"].values()) == sum(per_file.values())
+    # And the summary says so, counting them (the files with no truth call, and their detections).
+    assert m1["files_without_truth_calls"] == sorted(unnamed) and m0["files_without_truth_calls"] == []
+    assert m1["detections_in_files_without_truth_calls"] == len(extra)
+    said = format_evaluation(m1)
+    assert (
+        f"{len(unnamed)} of the 6 files judged hold no truth call" in said and f"their {len(extra)} detections" in said
+    )
+    assert "hold no truth call" not in format_evaluation(m0)
     # The calls and the matches are the same; only false positives were added.
     assert {c: m["truth_calls"] for c, m in m0["classes"].items()} == {
         c: m["truth_calls"] for c, m in m1["classes"].items()
