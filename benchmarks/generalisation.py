@@ -222,8 +222,8 @@ def run_seed(
 # count as "difficult" in the second AP: neither found nor missed, and a detection of one
 # is neither true nor false (the rule of the PASCAL VOC challenge for objects marked
 # difficult, Everingham et al. 2010, Int. J. Comput. Vis. 88, 303-338). A round number
-# chosen before looking at results; complete truth holds calls down to -25 dB that no
-# analyst would have boxed, and the AP over all calls counts every one as a miss.
+# between the cuts first looked at (-12 and -8 dB); complete truth holds calls down to
+# -25 dB that no analyst would have boxed, and the AP over all calls counts each as a miss.
 FAINT_SNR_DB = -10.0
 
 
