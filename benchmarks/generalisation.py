@@ -181,6 +181,7 @@ def run_seed(
     hp = m.get("hour_presence") or {}
     confusion = metrics.get("confusion") or {}
     taken, confuser_calls = _confusers_taken(confusion, target, CONFUSER_LABELS)
+    audible_ap, n_faint = ap_without_faint_calls(out, summary["calls_table"], target, FAINT_SNR_DB)
     test_name = Path(summary["survey_manifest"]).parent.name
     train_name = Path(summary["training_manifest"]).parent.name
     return {
@@ -189,8 +190,8 @@ def run_seed(
         "training_target_calls": summary["calls"][train_name][target],
         "training_target_labelled": summary["labelled"][target],
         "average_precision": m["average_precision"],
-        "average_precision_audible": ap_without_faint_calls(out, summary["calls_table"], target, FAINT_SNR_DB),
-        "faint_target_calls": faint_calls(summary["calls_table"], test_name, target, FAINT_SNR_DB),
+        "average_precision_audible": audible_ap,
+        "faint_target_calls": n_faint,
         # Where precision never reaches 0.9, no recall is reached at it: 0 (metrics.json: null).
         "recall_at_precision_0.9": m["recall_at_target_precision"] or 0.0,
         "precision_0.9_reached": m["recall_at_target_precision"] is not None,
@@ -227,48 +228,37 @@ def run_seed(
 FAINT_SNR_DB = -10.0
 
 
-def _true_snr(calls_table: str, deployment: str, label: str) -> dict[tuple[str, float], float]:
-    """The scenario's SNR of each call of ``label`` at ``deployment``, by (file, start s to 0.01 s)."""
+def ap_without_faint_calls(evaluation: Path, calls_table: str, label: str, below_db: float) -> tuple[float, int]:
+    """Average precision of ``label`` with calls below ``below_db`` SNR marked difficult,
+    and how many calls were so marked.
+
+    From ``evaluate``'s ``truth_calls.csv`` and ``matches.csv``: the same matching, with
+    the difficult calls and the detections that matched them taken out of the ranked
+    list; AP by the project's own rule (``callsieve.classifier.evaluation``, recall over
+    every counted call). The SNR of each call is the scenario's (``calls_table``), found
+    by file and start time to 0.01 s.
+    """
     import csv
 
+    from callsieve.classifier.evaluation import average_precision, precision_recall
+
+    deployment = json.loads((evaluation / "metrics.json").read_text())["deployment"]
     with open(calls_table, newline="") as fh:
-        return {
+        snr = {
             (r["file"], round(float(r["start_s"]), 2)): float(r["snr_db"])
             for r in csv.DictReader(fh)
             if r["deployment"] == deployment and r["label"] == label
         }
-
-
-def faint_calls(calls_table: str, deployment: str, label: str, below_db: float) -> int:
-    """How many calls of ``label`` at ``deployment`` lie below ``below_db`` SNR."""
-    return sum(v < below_db for v in _true_snr(calls_table, deployment, label).values())
-
-
-def ap_without_faint_calls(evaluation: Path, calls_table: str, label: str, below_db: float) -> float:
-    """Average precision of ``label`` with calls below ``below_db`` SNR marked difficult.
-
-    From ``evaluate``'s ``truth_calls.csv`` and ``matches.csv``: the same matching, with
-    the difficult calls and the detections that matched them taken out of the ranked
-    list; AP as in docs/evaluation.md (scikit-learn's AP of the ranked detections times
-    the fraction of the counted calls they found).
-    """
-    import csv
-
     with open(evaluation / "truth_calls.csv", newline="") as fh:
         truth = [r for r in csv.DictReader(fh) if r["label"] == label]
-    deployment = json.loads((evaluation / "metrics.json").read_text())["deployment"]
-    snr = _true_snr(calls_table, deployment, label)
     faint = {r["truth_row"] for r in truth if snr.get((r["file"], round(float(r["start_s"]), 2)), 0.0) < below_db}
-    counted = len(truth) - len(faint)
     with open(evaluation / "matches.csv", newline="") as fh:
         rows = [r for r in csv.DictReader(fh) if r["label"] == label and r["truth_row"] not in faint]
-    from sklearn.metrics import average_precision_score
-
-    hit = np.array([r["truth_row"] != "" for r in rows])
-    conf = np.array([float(r["confidence"]) for r in rows])
-    if not counted or not hit.any():
-        return 0.0 if counted else float("nan")
-    return float(average_precision_score(hit, conf) * hit.sum() / counted)
+    hit = np.array([r["truth_row"] != "" for r in rows], dtype=bool)
+    conf = np.array([float(r["confidence"]) for r in rows], dtype=float)
+    counted = len(truth) - len(faint)
+    ap = average_precision(precision_recall(conf, hit, counted)) if counted else float("nan")
+    return ap, len(faint)
 
 
 def run_demo_site(folder: Path, jobs: int, config: Path | None = None, threshold: float | None = None) -> dict:
@@ -415,22 +405,26 @@ def main() -> None:
         )
     if args.json:
         keys = [k for k, _, _ in MAIN + SURVEY] + ["scenario_s", "evaluation_s", "threshold_for_precision_0.9"]
-        doc = {
-            "benchmark": "generalisation",
-            "command": " ".join([Path(sys.argv[0]).name, *sys.argv[1:]]),
-            "date_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
-            "host": platform.node(),
-            "cpus": os.cpu_count(),
-            "hours": args.hours,
-            "jobs": args.jobs,
-            "seeds": results,
-            "demo": demo,
-            "config": str(args.config) if args.config else None,
-            "threshold": args.threshold,
-            "summary": {k: _stats(results, k) for k in keys},
-        }
-        args.json.parent.mkdir(parents=True, exist_ok=True)
-        args.json.write_text(json.dumps(doc, indent=2))
+        settings = {"hours": args.hours, "jobs": args.jobs, "demo": demo, "threshold": args.threshold}
+        settings["config"] = str(args.config) if args.config else None
+        write_record(args.json, "generalisation", settings, results, keys)
+
+
+def write_record(path: Path, benchmark: str, settings: dict, results: list[dict], keys: list[str]) -> None:
+    """Every figure of a benchmark run as JSON: where and when it ran, its settings, the
+    per-seed results and, for ``keys``, their mean, minimum and maximum over the seeds."""
+    doc = {
+        "benchmark": benchmark,
+        "command": " ".join([Path(sys.argv[0]).name, *sys.argv[1:]]),
+        "date_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "host": platform.node(),
+        "cpus": os.cpu_count(),
+        **settings,
+        "seeds": results,
+        "summary": {k: _stats(results, k) for k in keys},
+    }
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(doc, indent=2))
 
 
 if __name__ == "__main__":

@@ -14,8 +14,8 @@ written earlier is used again, as generalisation.py does):
    deployment name, its audio folder a folder of links to the half's files), so that a run
    holds only that half's detections (`review sample` draws from a whole run and cannot be
    limited to some files);
-3. scores the review half with the original model, twice, into two stores, one per
-   sampling policy (`review export-labels` takes every verdict of a run), and answers from
+3. scores the review half with the original model once and copies that store, one copy
+   per sampling policy (`review export-labels` takes every verdict of a run), and answers from
    the test site's truth like an analyst who is never wrong: a detection is "yes" if it
    matches a target call under the matching rule of docs/evaluation.md (the demo's
    simulated reviewer, `demo._run_truth`), else "no".
@@ -47,15 +47,13 @@ from __future__ import annotations
 import argparse
 import csv
 import json
-import os
-import platform
 import re
+import shutil
 import sys
 import time
-from datetime import UTC, datetime
 from pathlib import Path
 
-from generalisation import _cli, _stats, _table, hard_scenario, seed_folder
+from generalisation import _cli, _table, hard_scenario, seed_folder, write_record
 
 # Columns of the tables: key in the per-seed result, heading, format.
 HELD_OUT = [
@@ -218,11 +216,15 @@ def run_seed(seed: int, folder: Path, hours: float, n_review: int) -> dict:
 
     result: dict = {"seed": seed, "review_files": len(halves["review"]), "held_out_files": len(halves["held-out"])}
     models = {"before": model}
+    # One scoring of the review half; each policy verifies in its own copy of that store,
+    # since `review export-labels` takes every verdict of a run.
+    reviewed = folder / "review.db"
+    score(model, manifests["review"], reviewed)
     for policy in ("a", "b"):
         work = folder / f"policy-{policy}"
         work.mkdir()
         db = work / "review.db"
-        score(model, manifests["review"], db)
+        shutil.copy2(reviewed, db)
         t0 = time.perf_counter()
         if policy == "a":
             sample = work / "sample"
@@ -313,19 +315,7 @@ def main() -> None:
     print(_table(results, TIMES))
     if args.json:
         keys = [k for k, _, _ in HELD_OUT + VERDICTS + STORED + TIMES] + ["scenario_s", "scoring_site_s"]
-        doc = {
-            "benchmark": "verification_loop",
-            "command": " ".join([Path(sys.argv[0]).name, *sys.argv[1:]]),
-            "date_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
-            "host": platform.node(),
-            "cpus": os.cpu_count(),
-            "hours": args.hours,
-            "review": args.review,
-            "seeds": results,
-            "summary": {k: _stats(results, k) for k in keys},
-        }
-        args.json.parent.mkdir(parents=True, exist_ok=True)
-        args.json.write_text(json.dumps(doc, indent=2))
+        write_record(args.json, "verification_loop", {"hours": args.hours, "review": args.review}, results, keys)
 
 
 if __name__ == "__main__":

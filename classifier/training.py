@@ -546,11 +546,12 @@ def train_model(
     t1 = time.perf_counter()
     # OpenMP threads that share cores with other busy processes stall at every barrier of
     # the boosting (docs/threads.md): the fit takes only the cores the load leaves free.
+    weight = calibration_weight(examples)
     with limited_threads(fit_threads()) as threads:
         if progress:
             progress(f"fitting with {threads} thread(s) (set {THREADS_ENV} to change)")
         estimator = _estimator(config, examples.names, target).fit(
-            examples.X, examples.y, sample_weight=calibration_weight(examples), groups=examples.groups
+            examples.X, examples.y, sample_weight=weight, groups=examples.groups
         )
         cascade = fit_cascade(
             examples.X, examples.y, examples.weight, estimator.fold_, examples.names, settings, BACKGROUND
@@ -572,7 +573,7 @@ def train_model(
         "examples": dict(Counter(examples.y.tolist())),
         "windows_described": examples.windows_described,
         # Verified examples rank but do not calibrate (see calibration_weight).
-        "calibration_examples": int(np.sum(calibration_weight(examples) > 0)),
+        "calibration_examples": int(np.sum(weight > 0)),
         "hours_described": round(examples.hours_described, 4),
         "config": config.to_dict(),
         "validation": validation,

@@ -121,7 +121,8 @@ def test_retraining_from_verdicts_records_them_and_estimate_sets_them_aside(
     report = train([manifest], [labels, verified], model, config_path=config_path, track=False)
     assert report["verified"]["stretches"] == 4 and report["verified"]["runs"] == ["1"]
     assert load_model(model).summary["verified"]["parent_models"]  # the parent model's hash
-    # Band and window still come from the analysts' table (see the next test).
+    # Band and window still come from the analysts' table. On this fixture the verified
+    # boxes would not move them anyway; the next test is the one that fails without the rule.
     assert load_model(model).settings == load_model(sweep_model).settings
     summary = score_deployment(model, manifest, db)
     assert summary["run_id"] == 2
