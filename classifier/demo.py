@@ -238,13 +238,18 @@ def _retraining_step(
     label = summary["target_label"]
     judged = {}
     for name, run in (("before", run_id), ("after", rescored["run_id"])):
-        ev = evaluate(db, held_out, out / f"evaluation-held-out-run{run}", run_id=run, n_resamples=200)
         judged[name] = {
             "run_id": run,
             "model": first["model"] if name == "before" else retrained["model"],
-            "average_precision": ev["classes"].get(label, {}).get("average_precision"),
-            "files": ev["files_judged"],
+            "average_precision": None,
+            "files": 0,
         }
+        # A short survey can have a verdict in every file that holds a call: then nothing
+        # is held out, and the comparison below is the only one (said so where printed).
+        if rows:
+            ev = evaluate(db, held_out, out / f"evaluation-held-out-run{run}", run_id=run, n_resamples=200)
+            judged[name]["average_precision"] = ev["classes"].get(label, {}).get("average_precision")
+            judged[name]["files"] = ev["files_judged"]
     # On every survey file too: the verified stretches are then in both training and truth,
     # which flatters the new model; said so where printed.
     ev_all = evaluate(
@@ -576,13 +581,23 @@ def _retraining_lines(summary: dict[str, Any]) -> list[str]:
 
     by_label = ", ".join(f"{k} {v}" for k, v in sorted(rt["verified_by_label"].items()))
     ap0, ap1 = rt["before"]["average_precision"], rt["after"]["average_precision"]
+    if rt["held_out_files"]:
+        held = [
+            f"  {summary['target_label']} on the {rt['held_out_files']} survey files no verdict touched "
+            f"({rt['held_out_truth']}):",
+            f"    before (run {rt['before']['run_id']}): average precision {_maybe(ap0, 3)}; {at_guarantee(est0)}",
+            f"    after  (run {rt['after']['run_id']}): average precision {_maybe(ap1, 3)}; {at_guarantee(est1)}",
+        ]
+    else:
+        held = [
+            "  every survey file that holds a truth call also holds a verdict: no file is held out to judge on",
+            f"    before (run {rt['before']['run_id']}): {at_guarantee(est0)}",
+            f"    after  (run {rt['after']['run_id']}): {at_guarantee(est1)}",
+        ]
     return [
         "Retraining from the verdicts (review export-labels, train, score, evaluate)",
         f"  {rt['verified_rows']} verified detections as a partial label table ({by_label}); model {rt['model']}",
-        f"  {summary['target_label']} on the {rt['held_out_files']} survey files no verdict touched "
-        f"({rt['held_out_truth']}):",
-        f"    before (run {rt['before']['run_id']}): average precision {_maybe(ap0, 3)}; {at_guarantee(est0)}",
-        f"    after  (run {rt['after']['run_id']}): average precision {_maybe(ap1, 3)}; {at_guarantee(est1)}",
+        *held,
         "  (the guaranteed thresholds come from a sample of each run, answered by the simulated reviewer)",
         f"  on every survey file: average precision {_maybe(rt['before']['average_precision_all_files'], 3)} before, "
         f"{_maybe(rt['after']['average_precision_all_files'], 3)} after (optimistic: the verified stretches are "

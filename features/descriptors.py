@@ -28,7 +28,7 @@ __all__ = [
 ]
 
 # Bump when any descriptor changes meaning, so old models are refused on new data.
-DESCRIPTOR_VERSION = "3"
+DESCRIPTOR_VERSION = "4"
 _TINY = 1e-30
 
 
@@ -180,6 +180,14 @@ _CONTOUR = [
     ("trace_duration_s", "s", "time the trace stands above the noise floor"),
     ("trace_fit_rms_hz", "Hz", "rms deviation of the trace from its quadratic fit"),
     ("trace_excess_db", "dB", "median excess of the trace over the noise floor, frames above it"),
+    (
+        "sweep_path_excess_db",
+        "dB",
+        "mean excess over the noise floor (each cell clipped to 0..20 dB) along the best straight "
+        "sweep of 0.3 window lengths through the window's spectrogram",
+    ),
+    ("sweep_path_rate_hz_per_s", "Hz/s", "frequency change per second of that best straight sweep"),
+    ("sweep_path_centre_hz", "Hz", "frequency of that sweep at its midpoint"),
 ]
 _ENERGY = [
     ("band_level_db", "dB re 1 µPa", "rms SPL in the analysis band over the window"),
@@ -374,6 +382,7 @@ def describe_windows(
     )
     contour[none] = 0.0
     contour[none, 11] = np.max(exc[none], axis=1) if np.any(none) else 0.0
+    contour = np.concatenate([contour, _sweep_path(excess_db, f, first, n_w, settings)], axis=1)
 
     # --- band energy --------------------------------------------------------------
     band_p = p_lin.sum(axis=0) * df  # µPa² per frame
@@ -469,6 +478,79 @@ def _patch_excess_db(
         n = cn[:, first + b] - cn[:, first + a]
         out.extend(10.0 * np.log10(np.maximum(p, _TINY) / np.maximum(n, _TINY)))
     return out
+
+
+#: Length of the straight sweep paths, as a share of the window, and the cap on each
+#: cell's excess (dB): a transient of one frame cannot outweigh a whole faint sweep.
+_PATH_SHARE = 0.3
+_PATH_CAP_DB = 20.0
+#: Largest number of sweep rates on each side of zero.
+_PATH_RATES = 10
+
+
+def _sweep_path(
+    excess_db: np.ndarray, frequency_hz: np.ndarray, first: np.ndarray, n_w: int, settings: DescriptorSettings
+) -> np.ndarray:
+    """Best mean excess along a straight sweep in each window, its rate and centre.
+
+    A faint sweep stands little above the floor in any one cell, but adding the cells
+    along its path gains what a matched filter gains (Mellinger & Clark 2000, J. Acoust.
+    Soc. Am. 107(6), spectrogram correlation): the path's mean excess over J cells has a
+    noise spread about sqrt(J) times smaller than one cell's. Straight paths of a fixed
+    length (a share of the window) at a set of rates, on a grid of two bins in frequency
+    (the larger of each pair, a tolerance for curvature and jitter) and every other frame
+    in time; each window takes the best path starting and ending inside it. The loops
+    run over rates and path points (a few hundred per block), never over frames.
+
+    Returns
+    -------
+    np.ndarray [shape=(n_windows, 3)]: mean excess (dB), rate (Hz/s), midpoint frequency (Hz)
+    """
+    hop = settings.frame_hop_s
+    stride = 2 if n_w >= 9 else 1
+    points = int(round(_PATH_SHARE * settings.window_s / (stride * hop))) + 1
+    points = int(min(max(points, 2), (n_w - 1) // stride + 1))
+    span = stride * (points - 1)  # frames from a path's first point to its last
+    e = np.clip(excess_db, 0.0, _PATH_CAP_DB).astype(np.float32)
+    if e.shape[0] % 2:
+        e = np.concatenate([e, np.zeros((1, e.shape[1]), np.float32)])
+    e = np.maximum(e[0::2], e[1::2])
+    df2 = 2.0 * float(frequency_hz[1] - frequency_hz[0])
+    centre_hz = frequency_hz[0] + 0.5 * df2 / 2.0 + df2 * np.arange(e.shape[0])
+    duration = span * hop
+    # Rates a step apart move a path's end by at most one coarse bin from the nearest.
+    step = 2.0 * df2 / max(duration, hop)
+    n_side = int(min(_PATH_RATES, np.floor((settings.high_hz - settings.low_hz) / step)))
+    rates = np.arange(-n_side, n_side + 1) * step
+    lag_s = np.arange(points) * stride * hop
+    shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)
+    pad = int(np.abs(shifts).max())
+    n_f, n_t = e.shape
+    n_start = n_t - span
+    ep = np.concatenate([np.zeros((pad, n_t), np.float32), e, np.zeros((pad, n_t), np.float32)])
+    best = np.full(n_start, -1.0, np.float32)
+    best_rate = np.zeros(n_start)
+    best_bin = np.zeros(n_start, np.int64)
+    acc = np.empty((n_f, n_start), np.float32)
+    # Slowest rates first, so that where several paths tie (a loud call whose cells all
+    # reach the cap) the rate nearest zero is kept, not the first of the list.
+    for r in np.argsort(np.abs(rates), kind="stable"):
+        row = shifts[r]
+        acc[:] = 0.0
+        for j, sh in enumerate(row):
+            acc += ep[pad + sh : pad + sh + n_f, j * stride : j * stride + n_start]
+        top_bin = np.argmax(acc, axis=0)
+        top = acc[top_bin, np.arange(n_start)]
+        better = top > best
+        best[better] = top[better]
+        best_rate[better] = rates[r]
+        best_bin[better] = top_bin[better]
+    # Windows: the best over the starts whose paths lie inside them.
+    width = n_w - span
+    view = _window_view(best, first, width)
+    k = first + np.argmax(view, axis=1)
+    mid_hz = centre_hz[best_bin[k]] + best_rate[k] * duration / 2.0
+    return np.column_stack([best[k] / points, best_rate[k], mid_hz])
 
 
 def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:

@@ -50,6 +50,13 @@ def _amplitude_for_bin_snr(snr_db: float) -> float:
     return float(np.sqrt(2.0 * 1.5 * DF * N0 * 10.0 ** (snr_db / 10.0)))
 
 
+def _faint_sweep_amplitude(span_hz: float, seconds: float, db_over_n0: float) -> float:
+    """Amplitude (µPa) of a linear sweep whose power, spread evenly over the band it
+    crosses, has a density ``db_over_n0`` dB relative to N0: P = A²/2 over ``span_hz``.
+    """
+    return float(np.sqrt(2.0 * span_hz * N0 * 10.0 ** (db_over_n0 / 10.0)))
+
+
 class Scene:
     """Pressure in µPa on a time axis, built event by event."""
 
@@ -105,6 +112,7 @@ BAND_NOISE = (220.0, 245.0, 355.0, 20.0)  # t0, low, high, dB over N0
 P2P = (240.0, 500.0, 1e7, 900.0, 3e7)  # t0, in-band f, A, out-of-band f, A
 LOPSIDED = (255.0, 200.0, 1e6)  # t0, f, A: A (cos ωt + 0.5 cos 2ωt), peaks +1.5 A and -0.75 A
 QUIET = (270.0, 296.0)  # windows starting in this span hold noise only
+FAINT_SWEEP = (186.0, 1.5, 150.0, 330.0, -3.0)  # start, duration, f0, f1, dB over N0 per bin-second
 
 
 @pytest.fixture(scope="module")
@@ -129,6 +137,8 @@ def scene_a(tmp_path_factory):
     t0, f, a = LOPSIDED
     s.tone(t0, 3.0, f, a, phase=np.pi / 2)
     s.tone(t0, 3.0, 2 * f, a / 2, phase=np.pi / 2)
+    t0, dur, f0, f1, db = FAINT_SWEEP
+    s.sweep(t0, dur, f0, (f1 - f0) / dur, 0.0, _faint_sweep_amplitude(f1 - f0, dur, db))
     return s.describe(tmp_path_factory.mktemp("meaning"), SETTINGS, "a.wav")
 
 
@@ -169,6 +179,7 @@ def test_every_descriptor_of_the_table_is_covered_here():
         "trace_sweep_rate_hz_per_s", "trace_sweep_change_hz_per_s2", "trace_turns", "trace_cover_fraction",
         "trace_duration_s", "trace_fit_rms_hz", "trace_excess_db", "band_level_db", "noise_level_db", "snr_db",
         "peak_to_peak_db", "psd_evenness", "excess_centroid_hz", "peak_run_width_hz", "excess_core_duration_s",
+        "sweep_path_excess_db", "sweep_path_rate_hz_per_s", "sweep_path_centre_hz",
     }  # fmt: skip
     names = {n for n, _, _ in descriptor_table(SETTINGS)}
     # Sub-band levels, excesses and peak excesses, and the patch cells, are tested below
@@ -242,6 +253,71 @@ def test_linear_sweep_has_no_curvature_no_turns_and_fits_exactly(scene_b):
         assert abs(row["trace_sweep_change_hz_per_s2"]) <= 2 * (DF / 5) / half**2
         assert row["trace_turns"] == 0
         assert row["trace_fit_rms_hz"] < DF / 10
+
+
+# The straight sweep paths on SETTINGS' grid (descriptor_table): 0.3 window lengths =
+# 0.6 s, points every other frame (7 points), rates a step of 2 coarse bins (2 × 20 Hz)
+# over 0.6 s = 66.7 Hz/s apart, and frequencies on pairs of bins (20 Hz).
+PATH_S = 0.6
+PATH_POINTS = 7
+PATH_RATE_STEP = 2 * 2 * DF / PATH_S
+PATH_CAP_DB = 20.0
+
+
+def test_down_sweep_best_path_rate_and_midpoint(scene_a):
+    # A linear down-sweep of -150 Hz/s lasting 1 s, wholly inside the window: the best
+    # straight path of 0.6 s follows it, so its rate is the sweep's within half a rate step,
+    # and its midpoint lies where a 0.6-s stretch of the sweep can have its middle,
+    # 250 - 150·0.3 = 205 down to 100 + 150·0.3 = 145 Hz, within a coarse bin. A loud sweep stands far above
+    # the floor in every cell, so its mean is near the cap (frame smearing of 150 Hz/s over a
+    # 0.1-s frame costs a few dB at most).
+    t0, dur, f0, f1 = DOWN_SWEEP
+    row = _row(scene_a, 20.0)
+    assert row["sweep_path_rate_hz_per_s"] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP / 2)
+    mid_lo, mid_hi = f1 + 150.0 * PATH_S / 2, f0 - 150.0 * PATH_S / 2
+    assert mid_lo - 2 * DF <= row["sweep_path_centre_hz"] <= mid_hi + 2 * DF
+    assert 15.0 <= row["sweep_path_excess_db"] <= PATH_CAP_DB
+
+
+def test_path_along_a_steady_tone_is_its_bins_snr_up_to_the_cap(scene_a):
+    # A steady tone is a path of rate 0 at its frequency; each cell stands
+    # 10 log10(10^(s/10) + 1) dB over the floor (as for trace_excess_db above), clipped at
+    # 20 dB, so the path's mean is that (15 dB tone: 15.1 dB) or the cap (25 and 30 dB tones:
+    # every cell above it, exactly 20). Tolerance as for trace_excess_db (2 dB) plus 0.5 dB
+    # for the best of the paths being taken (their means scatter by about 1 dB / sqrt(7)).
+    for t0, f, snr in EXCESS_TONES:
+        row = _row(scene_a, t0 + 0.5)
+        expected = min(10.0 * np.log10(10.0 ** (snr / 10.0) + 1.0), PATH_CAP_DB)
+        if snr >= 25:
+            assert row["sweep_path_excess_db"] == pytest.approx(PATH_CAP_DB, abs=1e-3), f"{snr} dB"
+        else:
+            assert row["sweep_path_excess_db"] == pytest.approx(expected, abs=2.5), f"{snr} dB"
+        assert row["sweep_path_rate_hz_per_s"] == 0.0
+        assert abs(row["sweep_path_centre_hz"] - f) <= DF
+
+
+def test_faint_sweep_stands_out_along_its_path_not_in_its_strongest_cell(scene_a):
+    # A sweep of 120 Hz/s whose power, spread over the 180 Hz it crosses, lies 3 dB below
+    # the noise PSD: in one spectrogram cell it stands only a few dB above the noise (the
+    # strongest cells of pure noise reach as high), but along its path the mean of 7 cells
+    # scatters about 2.6 times less (1/sqrt(7); spectrogram correlation, Mellinger & Clark 2000,
+    # J. Acoust. Soc. Am. 107(6)), so its best path lies above that of every noise-only window
+    # while its strongest sub-band frame does not stand out as clearly.
+    t0, dur, f0, f1, _ = FAINT_SWEEP
+    noise = np.array([_row(scene_a, ws)["sweep_path_excess_db"] for ws in np.arange(*QUIET, 0.5)])
+    # The windows that hold the whole sweep start from t0 + dur - 2 s to t0.
+    sweep_rows = [_row(scene_a, ws) for ws in np.arange(t0 + dur - SETTINGS.window_s, t0 + 1e-9, 0.5)]
+    best = max(r["sweep_path_excess_db"] for r in sweep_rows)
+    assert best > noise.max() + 1.0
+    assert (best - noise.mean()) / noise.std() > 4.0
+    # Cell by cell it is lost: its strongest sub-band frame is no higher than noise's.
+    def strongest(row):
+        return max(row[f"subband{i}_peak_excess_db"] for i in range(1, SETTINGS.n_subbands + 1))
+
+    quiet = [strongest(_row(scene_a, ws)) for ws in np.arange(*QUIET, 0.5)]
+    assert max(strongest(r) for r in sweep_rows) < max(quiet)
+    rates = [r["sweep_path_rate_hz_per_s"] for r in sweep_rows if r["sweep_path_excess_db"] == best]
+    assert rates[0] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP)
 
 
 def _fm_frame_times(ws: float, t0: float) -> np.ndarray:
