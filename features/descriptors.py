@@ -499,7 +499,8 @@ def _sweep_path(
     noise spread about sqrt(J) times smaller than one cell's. Straight paths of a fixed
     length (a share of the window) at a set of rates, on a grid of two bins in frequency
     (the larger of each pair, a tolerance for curvature and jitter) and every other frame
-    in time; each window takes the best path starting and ending inside it. The loops
+    in time; each window takes the best path starting on one of every other frame from its
+    first and ending inside it. The loops
     run over rates and path points (a few hundred per block), never over frames.
 
     Returns
@@ -525,32 +526,41 @@ def _sweep_path(
     lag_s = np.arange(points) * stride * hop
     shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)
     pad = int(np.abs(shifts).max())
-    n_f, n_t = e.shape
-    n_start = n_t - span
-    ep = np.concatenate([np.zeros((pad, n_t), np.float32), e, np.zeros((pad, n_t), np.float32)])
-    best = np.full(n_start, -1.0, np.float32)
-    best_rate = np.zeros(n_start)
-    best_bin = np.zeros(n_start, np.int64)
-    acc = np.empty((n_f, n_start), np.float32)
-    # Slowest rates first, so that where several paths tie (a loud call whose cells all
-    # reach the cap) the rate nearest zero is kept, not the first of the list.
-    for r in np.argsort(np.abs(rates), kind="stable"):
-        row = shifts[r]
-        acc[:] = 0.0
-        for j, sh in enumerate(row):
-            acc += ep[pad + sh : pad + sh + n_f, j * stride : j * stride + n_start]
-        top_bin = np.argmax(acc, axis=0)
-        top = acc[top_bin, np.arange(n_start)]
-        better = top > best
-        best[better] = top[better]
-        best_rate[better] = rates[r]
-        best_bin[better] = top_bin[better]
-    # Windows: the best over the starts whose paths lie inside them.
-    width = n_w - span
-    view = _window_view(best, first, width)
-    k = first + np.argmax(view, axis=1)
-    mid_hz = centre_hz[best_bin[k]] + best_rate[k] * duration / 2.0
-    return np.column_stack([best[k] / points, best_rate[k], mid_hz])
+    n_f = e.shape[0]
+    ep = np.concatenate([np.zeros((pad, e.shape[1]), np.float32), e, np.zeros((pad, e.shape[1]), np.float32)])
+    order = np.argsort(np.abs(rates), kind="stable")
+    out = np.empty((first.size, 3))
+    # A path's points lie `stride` frames apart, so they all fall on frames of one parity;
+    # paths start on every other frame from each window's first, which halves the work.
+    for parity in np.unique(first % stride):
+        sub = np.ascontiguousarray(ep[:, parity::stride])
+        n_start = sub.shape[1] - (points - 1)
+        best = np.full(n_start, -1.0, np.float32)
+        best_rate = np.zeros(n_start)
+        best_bin = np.zeros(n_start, np.int64)
+        acc = np.empty((n_f, n_start), np.float32)
+        cols = np.arange(n_start)
+        # Slowest rates first, so that where several paths tie (a loud call whose cells all
+        # reach the cap) the rate nearest zero is kept, not the first of the list.
+        for r in order:
+            row = shifts[r]
+            acc[:] = sub[pad + row[0] : pad + row[0] + n_f, :n_start]
+            for j in range(1, points):
+                acc += sub[pad + row[j] : pad + row[j] + n_f, j : j + n_start]
+            top_bin = np.argmax(acc, axis=0)
+            top = acc[top_bin, cols]
+            better = top > best
+            best[better] = top[better]
+            best_rate[better] = rates[r]
+            best_bin[better] = top_bin[better]
+        # Windows: the best over the starts whose paths lie inside them.
+        mine = first % stride == parity
+        start = (first[mine] - parity) // stride
+        view = _window_view(best, start, (n_w - 1 - span) // stride + 1)
+        k = start + np.argmax(view, axis=1)
+        mid_hz = centre_hz[best_bin[k]] + best_rate[k] * duration / 2.0
+        out[mine] = np.column_stack([best[k] / points, best_rate[k], mid_hz])
+    return out
 
 
 def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:
