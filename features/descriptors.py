@@ -535,31 +535,31 @@ def _sweep_path(
     for parity in np.unique(first % stride):
         sub = np.ascontiguousarray(ep[:, parity::stride])
         n_start = sub.shape[1] - (points - 1)
-        best = np.full(n_start, -1.0, np.float32)
-        best_rate = np.zeros(n_start)
-        best_bin = np.zeros(n_start, np.int64)
-        acc = np.empty((n_f, n_start), np.float32)
-        cols = np.arange(n_start)
         # Slowest rates first, so that where several paths tie (a loud call whose cells all
-        # reach the cap) the rate nearest zero is kept, not the first of the list.
-        for r in order:
+        # reach the cap) the rate nearest zero is kept (argmax takes the first maximum).
+        tops = np.empty((order.size, n_start), np.float32)
+        acc = np.empty((n_f, n_start), np.float32)
+        for i, r in enumerate(order):
             row = shifts[r]
-            acc[:] = sub[pad + row[0] : pad + row[0] + n_f, :n_start]
-            for j in range(1, points):
+            np.add(
+                sub[pad + row[0] : pad + row[0] + n_f, :n_start], sub[pad + row[1] : pad + row[1] + n_f, 1 : 1 + n_start], out=acc
+            )
+            for j in range(2, points):
                 acc += sub[pad + row[j] : pad + row[j] + n_f, j : j + n_start]
-            top_bin = np.argmax(acc, axis=0)
-            top = acc[top_bin, cols]
-            better = top > best
-            best[better] = top[better]
-            best_rate[better] = rates[r]
-            best_bin[better] = top_bin[better]
-        # Windows: the best over the starts whose paths lie inside them.
+            np.max(acc, axis=0, out=tops[i])
+        # Windows: the best over the starts whose paths lie inside them, then that path's
+        # rate and, from its cells alone, its frequency.
         mine = first % stride == parity
         start = (first[mine] - parity) // stride
+        best = tops.max(axis=0)
         view = _window_view(best, start, (n_w - 1 - span) // stride + 1)
         k = start + np.argmax(view, axis=1)
-        mid_hz = centre_hz[best_bin[k]] + best_rate[k] * duration / 2.0
-        out[mine] = np.column_stack([best[k] / points, best_rate[k], mid_hz])
+        r_k = order[np.argmax(tops[:, k], axis=0)]
+        rows = pad + shifts[r_k][:, None, :] + np.arange(n_f)[None, :, None]  # (n_win, n_f, points)
+        cells = sub[rows, k[:, None, None] + np.arange(points)[None, None, :]].sum(axis=2)
+        bin_k = np.argmax(cells, axis=1)
+        mid_hz = centre_hz[bin_k] + rates[r_k] * duration / 2.0
+        out[mine] = np.column_stack([best[k] / points, rates[r_k], mid_hz])
     return out
 
 
