@@ -542,7 +542,9 @@ def _sweep_path(
         for i, r in enumerate(order):
             row = shifts[r]
             np.add(
-                sub[pad + row[0] : pad + row[0] + n_f, :n_start], sub[pad + row[1] : pad + row[1] + n_f, 1 : 1 + n_start], out=acc
+                sub[pad + row[0] : pad + row[0] + n_f, :n_start],
+                sub[pad + row[1] : pad + row[1] + n_f, 1 : 1 + n_start],
+                out=acc,
             )
             for j in range(2, points):
                 acc += sub[pad + row[j] : pad + row[j] + n_f, j : j + n_start]

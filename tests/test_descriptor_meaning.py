@@ -310,6 +310,7 @@ def test_faint_sweep_stands_out_along_its_path_not_in_its_strongest_cell(scene_a
     best = max(r["sweep_path_excess_db"] for r in sweep_rows)
     assert best > noise.max() + 1.0
     assert (best - noise.mean()) / noise.std() > 4.0
+
     # Cell by cell it is lost: its strongest sub-band frame is no higher than noise's.
     def strongest(row):
         return max(row[f"subband{i}_peak_excess_db"] for i in range(1, SETTINGS.n_subbands + 1))
