@@ -273,6 +273,7 @@ def _retraining_step(
         "verified_rows": exported["rows"],
         "verified_by_label": exported["by_label"],
         "held_out_files": len({r["file"] for r in rows}),
+        "held_out_target_calls": sum(r["label"] == label for r in rows),
         "held_out_truth": str(held_out),
         "model": retrained["model"],
         "before": judged["before"],
@@ -584,7 +585,9 @@ def _retraining_lines(summary: dict[str, Any]) -> list[str]:
     if rt["held_out_files"]:
         held = [
             f"  {summary['target_label']} on the {rt['held_out_files']} survey files no verdict touched "
-            f"({rt['held_out_truth']}):",
+            f"({rt['held_out_truth']}; {rt.get('held_out_target_calls', 0)} of its calls there"
+            + (", so no average precision" if not rt.get("held_out_target_calls") else "")
+            + "):",
             f"    before (run {rt['before']['run_id']}): average precision {_maybe(ap0, 3)}; {at_guarantee(est0)}",
             f"    after  (run {rt['after']['run_id']}): average precision {_maybe(ap1, 3)}; {at_guarantee(est1)}",
         ]
