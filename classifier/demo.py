@@ -586,7 +586,7 @@ def _retraining_lines(summary: dict[str, Any]) -> list[str]:
         held = [
             f"  {summary['target_label']} on the {rt['held_out_files']} survey files no verdict touched "
             f"({rt['held_out_truth']}; {rt.get('held_out_target_calls', 0)} of its calls there"
-            + (", so no average precision" if not rt.get("held_out_target_calls") else "")
+            + (", so no average precision" if rt.get("held_out_target_calls") == 0 else "")
             + "):",
             f"    before (run {rt['before']['run_id']}): average precision {_maybe(ap0, 3)}; {at_guarantee(est0)}",
             f"    after  (run {rt['after']['run_id']}): average precision {_maybe(ap1, 3)}; {at_guarantee(est1)}",

@@ -499,8 +499,8 @@ def _sweep_path(
     noise spread about sqrt(J) times smaller than one cell's. Straight paths of a fixed
     length (a share of the window) at a set of rates, on a grid of two bins in frequency
     (the larger of each pair, a tolerance for curvature and jitter) and every other frame
-    in time; each window takes the best path starting on one of every other frame from its
-    first and ending inside it. The loops
+    in time (every frame for windows of fewer than 9 frames); each window takes the best
+    path starting on one of every other frame from its first and ending inside it. The loops
     run over rates and path points (a few hundred per block), never over frames.
 
     Returns
@@ -519,7 +519,9 @@ def _sweep_path(
     df2 = 2.0 * float(frequency_hz[1] - frequency_hz[0])
     centre_hz = frequency_hz[0] + 0.5 * df2 / 2.0 + df2 * np.arange(e.shape[0])
     duration = span * hop
-    # Rates a step apart move a path's end by at most one coarse bin from the nearest.
+    # Neighbouring rates' ends lie two coarse bins apart, so any straight sweep ends within
+    # one coarse bin of the nearest rate's path. Rates reach a sweep of the whole band per
+    # second (as _max_jump_hz), at most _PATH_RATES on each side.
     step = 2.0 * df2 / max(duration, hop)
     n_side = int(min(_PATH_RATES, np.floor((settings.high_hz - settings.low_hz) / step)))
     rates = np.arange(-n_side, n_side + 1) * step
@@ -535,8 +537,9 @@ def _sweep_path(
     for parity in np.unique(first % stride):
         sub = np.ascontiguousarray(ep[:, parity::stride])
         n_start = sub.shape[1] - (points - 1)
-        # Slowest rates first, so that where several paths tie (a loud call whose cells all
-        # reach the cap) the rate nearest zero is kept (argmax takes the first maximum).
+        # Slowest rates first, so that where paths from one start tie (a loud call whose
+        # cells all reach the cap) the rate nearest zero is kept (argmax takes the first
+        # maximum); between starts, the earliest best start is taken.
         tops = np.empty((order.size, n_start), np.float32)
         acc = np.empty((n_f, n_start), np.float32)
         for i, r in enumerate(order):
@@ -557,8 +560,11 @@ def _sweep_path(
         view = _window_view(best, start, (n_w - 1 - span) // stride + 1)
         k = start + np.argmax(view, axis=1)
         r_k = order[np.argmax(tops[:, k], axis=0)]
-        rows = pad + shifts[r_k][:, None, :] + np.arange(n_f)[None, :, None]  # (n_win, n_f, points)
-        cells = sub[rows, k[:, None, None] + np.arange(points)[None, None, :]].sum(axis=2)
+        # Point by point, in the order acc adds them: the same sums, n_win × n_f at a time.
+        bins = np.arange(n_f)[None, :]
+        cells = sub[pad + shifts[r_k, 0][:, None] + bins, k[:, None]]
+        for j in range(1, points):
+            cells += sub[pad + shifts[r_k, j][:, None] + bins, (k + j)[:, None]]
         bin_k = np.argmax(cells, axis=1)
         mid_hz = centre_hz[bin_k] + rates[r_k] * duration / 2.0
         out[mine] = np.column_stack([best[k] / points, rates[r_k], mid_hz])

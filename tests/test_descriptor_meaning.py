@@ -112,7 +112,7 @@ BAND_NOISE = (220.0, 245.0, 355.0, 20.0)  # t0, low, high, dB over N0
 P2P = (240.0, 500.0, 1e7, 900.0, 3e7)  # t0, in-band f, A, out-of-band f, A
 LOPSIDED = (255.0, 200.0, 1e6)  # t0, f, A: A (cos ωt + 0.5 cos 2ωt), peaks +1.5 A and -0.75 A
 QUIET = (270.0, 296.0)  # windows starting in this span hold noise only
-FAINT_SWEEP = (186.0, 1.5, 150.0, 330.0, -3.0)  # start, duration, f0, f1, dB over N0 per bin-second
+FAINT_SWEEP = (186.0, 1.5, 150.0, 330.0, -3.0)  # start, duration, f0, f1, PSD over the band crossed re N0, dB
 
 
 @pytest.fixture(scope="module")
@@ -276,7 +276,7 @@ def test_down_sweep_best_path_rate_and_midpoint(scene_a):
     assert row["sweep_path_rate_hz_per_s"] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP / 2)
     mid_lo, mid_hi = f1 + 150.0 * PATH_S / 2, f0 - 150.0 * PATH_S / 2
     assert mid_lo - 2 * DF <= row["sweep_path_centre_hz"] <= mid_hi + 2 * DF
-    assert 15.0 <= row["sweep_path_excess_db"] <= PATH_CAP_DB
+    assert row["sweep_path_excess_db"] >= 15.0
 
 
 def test_path_along_a_steady_tone_is_its_bins_snr_up_to_the_cap(scene_a):
@@ -318,7 +318,7 @@ def test_faint_sweep_stands_out_along_its_path_not_in_its_strongest_cell(scene_a
     quiet = [strongest(_row(scene_a, ws)) for ws in np.arange(*QUIET, 0.5)]
     assert max(strongest(r) for r in sweep_rows) < max(quiet)
     rates = [r["sweep_path_rate_hz_per_s"] for r in sweep_rows if r["sweep_path_excess_db"] == best]
-    assert rates[0] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP)
+    assert rates[0] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP / 2)
 
 
 def _fm_frame_times(ws: float, t0: float) -> np.ndarray:
