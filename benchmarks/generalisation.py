@@ -89,9 +89,8 @@ def hard_scenario(folder: Path, seed: int, hours: float) -> tuple[dict, float]:
 
     kept = folder / "scenario-summary.json"
     t0 = time.perf_counter()
-    if kept.exists() and json.loads(kept.read_text()).get("_written_for") == [seed, hours]:
-        summary = json.loads(kept.read_text())
-    else:
+    summary = json.loads(kept.read_text()) if kept.exists() else {}
+    if summary.get("_written_for") != [seed, hours]:
         summary = write_scenario(folder / "scenario", seed=seed, hours=hours, preset="hard")
         kept.write_text(json.dumps(summary | {"_written_for": [seed, hours]}, default=str))
     return summary, time.perf_counter() - t0

@@ -238,18 +238,14 @@ def _retraining_step(
     label = summary["target_label"]
     judged = {}
     for name, run in (("before", run_id), ("after", rescored["run_id"])):
-        judged[name] = {
-            "run_id": run,
-            "model": first["model"] if name == "before" else retrained["model"],
-            "average_precision": None,
-            "files": 0,
-        }
+        ap = None
         # A short survey can have a verdict in every file that holds a call: then nothing
         # is held out, and the comparison below is the only one (said so where printed).
         if rows:
             ev = evaluate(db, held_out, out / f"evaluation-held-out-run{run}", run_id=run, n_resamples=200)
-            judged[name]["average_precision"] = ev["classes"].get(label, {}).get("average_precision")
-            judged[name]["files"] = ev["files_judged"]
+            ap = ev["classes"].get(label, {}).get("average_precision")
+        model = first["model"] if name == "before" else retrained["model"]
+        judged[name] = {"run_id": run, "model": model, "average_precision": ap}
     # On every survey file too: the verified stretches are then in both training and truth,
     # which flatters the new model; said so where printed.
     ev_all = evaluate(
@@ -585,8 +581,8 @@ def _retraining_lines(summary: dict[str, Any]) -> list[str]:
     if rt["held_out_files"]:
         held = [
             f"  {summary['target_label']} on the {rt['held_out_files']} survey files no verdict touched "
-            f"({rt['held_out_truth']}; {rt.get('held_out_target_calls', 0)} of its calls there"
-            + (", so no average precision" if rt.get("held_out_target_calls") == 0 else "")
+            f"({rt['held_out_truth']}; {rt['held_out_target_calls']} of its calls there"
+            + (", so no average precision" if rt["held_out_target_calls"] == 0 else "")
             + "):",
             f"    before (run {rt['before']['run_id']}): average precision {_maybe(ap0, 3)}; {at_guarantee(est0)}",
             f"    after  (run {rt['after']['run_id']}): average precision {_maybe(ap1, 3)}; {at_guarantee(est1)}",

@@ -521,7 +521,7 @@ def _sweep_path(
     duration = span * hop
     # Neighbouring rates' ends lie two coarse bins apart, so any straight sweep ends within
     # one coarse bin of the nearest rate's path. Rates reach a sweep of the whole band per
-    # second (as _max_jump_hz), at most _PATH_RATES on each side.
+    # second (the band term of _max_jump_hz), at most _PATH_RATES on each side.
     step = 2.0 * df2 / max(duration, hop)
     n_side = int(min(_PATH_RATES, np.floor((settings.high_hz - settings.low_hz) / step)))
     rates = np.arange(-n_side, n_side + 1) * step
