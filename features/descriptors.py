@@ -28,7 +28,7 @@ __all__ = [
 ]
 
 # Bump when any descriptor changes meaning, so old models are refused on new data.
-DESCRIPTOR_VERSION = "4"
+DESCRIPTOR_VERSION = "5"
 _TINY = 1e-30
 
 
@@ -513,17 +513,23 @@ def _sweep_path(
     points = int(min(max(points, 2), (n_w - 1) // stride + 1))
     span = stride * (points - 1)  # frames from a path's first point to its last
     e = np.clip(excess_db, 0.0, _PATH_CAP_DB).astype(np.float32)
+    f = np.asarray(frequency_hz, dtype=np.float64)
     if e.shape[0] % 2:
-        e = np.concatenate([e, np.zeros((1, e.shape[1]), np.float32)])
+        # An odd last bin stands alone: it is its own pair, centred on itself.
+        e = np.concatenate([e, e[-1:]])
+        f = np.concatenate([f, f[-1:]])
     e = np.maximum(e[0::2], e[1::2])
     df2 = 2.0 * float(frequency_hz[1] - frequency_hz[0])
-    centre_hz = frequency_hz[0] + 0.5 * df2 / 2.0 + df2 * np.arange(e.shape[0])
+    centre_hz = 0.5 * (f[0::2] + f[1::2])
     duration = span * hop
     # Neighbouring rates' ends lie two coarse bins apart, so any straight sweep ends within
     # one coarse bin of the nearest rate's path. Rates reach a sweep of the whole band per
-    # second (the band term of _max_jump_hz), at most _PATH_RATES on each side.
+    # second (the band term of _max_jump_hz) or, in windows shorter than a second (short
+    # calls on high bands), across the whole band within one window; at most _PATH_RATES
+    # on each side.
     step = 2.0 * df2 / max(duration, hop)
-    n_side = int(min(_PATH_RATES, np.floor((settings.high_hz - settings.low_hz) / step)))
+    fastest = (settings.high_hz - settings.low_hz) / min(1.0, settings.window_s)
+    n_side = int(min(_PATH_RATES, np.floor(fastest / step + 1e-9)))  # 1e-9: a limit on a step stays in
     rates = np.arange(-n_side, n_side + 1) * step
     lag_s = np.arange(points) * stride * hop
     shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)

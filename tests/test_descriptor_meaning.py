@@ -321,6 +321,56 @@ def test_faint_sweep_stands_out_along_its_path_not_in_its_strongest_cell(scene_a
     assert rates[0] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP / 2)
 
 
+def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):
+    # A whistle-like upsweep of 15 kHz/s (3 -> 7.5 kHz in 0.3 s) in half-second windows on a
+    # 2-10 kHz band. The fastest path must reach it: in windows shorter than a second, rates
+    # reach the whole band within one window (16 kHz/s here), where a band-width per second
+    # (8 kHz/s) would stop at about half the sweep's. Expected from the signal: its rate
+    # within half a rate step, and a loud sweep near the cap all along.
+    fs = 32000
+    settings = DescriptorSettings(
+        low_hz=2000.0, high_hz=10000.0, resolution_hz=100.0, frame_hop_s=0.005, window_s=0.5, window_hop_s=0.125
+    )
+    path_s = round(0.3 * settings.window_s / (2 * settings.frame_hop_s)) * 2 * settings.frame_hop_s
+    rate_step = 2 * 2 * settings.resolution_hz / path_s  # paths of 0.3 windows, as PATH_S above
+    n0 = 10.0 ** (N0_DB / 10.0)
+    t = np.arange(int(fs * 4.0)) / fs
+    p = np.random.default_rng(11).normal(0.0, np.sqrt(n0 * fs / 2.0), t.size)
+    t0, dur, f0, f1 = 2.0, 0.3, 3000.0, 7500.0
+    inside = (t >= t0) & (t < t0 + dur)
+    tau = t[inside] - t0
+    p[inside] += 1e5 * np.sin(2 * np.pi * (f0 * tau + (f1 - f0) / dur * tau**2 / 2))
+    path = tmp_path / "whistle.wav"
+    sf.write(path, samples_from_pressure(p, fs, CHAIN), fs, subtype="FLOAT")
+    tables = list(describe_file(path, CHAIN, settings))
+    start = np.concatenate([tb.start_s for tb in tables])
+    values = np.concatenate([tb.values for tb in tables])
+    names = descriptor_names(settings)
+    # The window that starts 0.0625 s before the sweep holds all of it.
+    i = int(np.argmin(np.abs(start - 1.875)))
+    row = dict(zip(names, values[i], strict=True))
+    assert (f1 - f0) / dur > (settings.high_hz - settings.low_hz) * 1.5  # well above a band per second
+    assert row["sweep_path_rate_hz_per_s"] == pytest.approx((f1 - f0) / dur, abs=rate_step / 2 + 1e-6)
+    assert row["sweep_path_excess_db"] >= 15.0
+
+
+def test_path_on_the_lone_top_bin_of_an_odd_grid_is_centred_on_it(tmp_path):
+    # SETTINGS' grid holds the multiples of 10 Hz from 40 to 640 Hz: 61 bins, so the paths'
+    # bin pairs end with bin 640 Hz alone. A steady tone there (15 dB over the floor in its
+    # bin, about 9 dB in the next one down: the Hann window's spectrum at bin offsets -1, 0, 1
+    # is -1/4, 1/2, -1/4 of its sum, so the neighbour holds a quarter of the power) is a
+    # path of rate 0 on that lone bin, whose centre is 640 Hz itself, not half a bin above
+    # the band.
+    assert (SETTINGS.high_hz - SETTINGS.low_hz) / DF + 1 == 61
+    scene = Scene(20.0, seed=12)
+    scene.tone(8.0, 6.0, SETTINGS.high_hz, _amplitude_for_bin_snr(15.0))
+    start, values = scene.describe(tmp_path, SETTINGS, "top.wav")
+    row = _row((start, values), 10.0)
+    assert row["sweep_path_rate_hz_per_s"] == 0.0
+    assert row["sweep_path_centre_hz"] == pytest.approx(SETTINGS.high_hz, abs=DF / 4)
+    assert row["sweep_path_excess_db"] >= 10.0
+
+
 def _fm_frame_times(ws: float, t0: float) -> np.ndarray:
     """Frame centres of the window starting at ws, in s from the FM's start."""
     n = FM_SETTINGS.frames_per_window
