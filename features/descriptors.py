@@ -529,7 +529,8 @@ def _sweep_path(
     # on each side.
     step = 2.0 * df2 / max(duration, hop)
     fastest = (settings.high_hz - settings.low_hz) / min(1.0, settings.window_s)
-    n_side = int(min(_PATH_RATES, np.floor(fastest / step + 1e-9)))  # 1e-9: a limit on a step stays in
+    # The 1e-9 keeps a limit that is a whole number of steps from rounding one step short.
+    n_side = int(min(_PATH_RATES, np.floor(fastest / step + 1e-9)))
     rates = np.arange(-n_side, n_side + 1) * step
     lag_s = np.arange(points) * stride * hop
     shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)

@@ -326,7 +326,9 @@ def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):
     # 2-10 kHz band. The fastest path must reach it: in windows shorter than a second, rates
     # reach the whole band within one window (16 kHz/s here), where a band-width per second
     # (8 kHz/s) would stop at about half the sweep's. Expected from the signal: its rate
-    # within half a rate step, and a loud sweep near the cap all along.
+    # within half a rate step, and a loud sweep near the cap all along (A²/2 = 5e9 µPa²
+    # spread over the 150 Hz it crosses in one 10-ms frame is about 3e7 µPa²/Hz, 25 dB over
+    # N0 = 1e5 µPa²/Hz).
     fs = 32000
     settings = DescriptorSettings(
         low_hz=2000.0, high_hz=10000.0, resolution_hz=100.0, frame_hop_s=0.005, window_s=0.5, window_hop_s=0.125
@@ -346,8 +348,9 @@ def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):
     start = np.concatenate([tb.start_s for tb in tables])
     values = np.concatenate([tb.values for tb in tables])
     names = descriptor_names(settings)
-    # The window that starts 0.0625 s before the sweep holds all of it.
+    # The window that starts 0.125 s before the sweep holds all of it.
     i = int(np.argmin(np.abs(start - 1.875)))
+    assert abs(start[i] - 1.875) < 1e-6, "no window starts there"
     row = dict(zip(names, values[i], strict=True))
     assert (f1 - f0) / dur > (settings.high_hz - settings.low_hz) * 1.5  # well above a band per second
     assert row["sweep_path_rate_hz_per_s"] == pytest.approx((f1 - f0) / dur, abs=rate_step / 2 + 1e-6)
@@ -357,10 +360,10 @@ def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):
 def test_path_on_the_lone_top_bin_of_an_odd_grid_is_centred_on_it(tmp_path):
     # SETTINGS' grid holds the multiples of 10 Hz from 40 to 640 Hz: 61 bins, so the paths'
     # bin pairs end with bin 640 Hz alone. A steady tone there (15 dB over the floor in its
-    # bin, about 9 dB in the next one down: the Hann window's spectrum at bin offsets -1, 0, 1
-    # is -1/4, 1/2, -1/4 of its sum, so the neighbour holds a quarter of the power) is a
-    # path of rate 0 on that lone bin, whose centre is 640 Hz itself, not half a bin above
-    # the band.
+    # bin, about 9 dB in the next one down: the DFT of a periodic Hann window of N samples,
+    # 0.5 - 0.5 cos(2πn/N), is N/2 at bin 0 and -N/4 at bins ±1, so the neighbour holds a
+    # quarter of the power, -6 dB) is a path of rate 0 on that lone bin, whose centre is
+    # 640 Hz itself, not half a bin above the band.
     assert (SETTINGS.high_hz - SETTINGS.low_hz) / DF + 1 == 61
     scene = Scene(20.0, seed=12)
     scene.tone(8.0, 6.0, SETTINGS.high_hz, _amplitude_for_bin_snr(15.0))
