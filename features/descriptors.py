@@ -523,14 +523,11 @@ def _sweep_path(
     centre_hz = 0.5 * (f[0::2] + f[1::2])
     duration = span * hop
     # Neighbouring rates' ends lie two coarse bins apart, so any straight sweep ends within
-    # one coarse bin of the nearest rate's path. Rates reach a sweep of the whole band per
-    # second (the band term of _max_jump_hz) or, in windows shorter than a second (short
-    # calls on high bands), across the whole band within one window; at most _PATH_RATES
-    # on each side.
+    # one coarse bin of the nearest rate's path. Rates reach the fastest sweep of a call
+    # (as the trace's jumps do), at most _PATH_RATES on each side.
     step = 2.0 * df2 / max(duration, hop)
-    fastest = (settings.high_hz - settings.low_hz) / min(1.0, settings.window_s)
     # The 1e-9 keeps a limit that is a whole number of steps from rounding one step short.
-    n_side = int(min(_PATH_RATES, np.floor(fastest / step + 1e-9)))
+    n_side = int(min(_PATH_RATES, np.floor(_fastest_sweep_hz_per_s(settings) / step + 1e-9)))
     rates = np.arange(-n_side, n_side + 1) * step
     lag_s = np.arange(points) * stride * hop
     shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)
@@ -578,12 +575,21 @@ def _sweep_path(
     return out
 
 
+def _fastest_sweep_hz_per_s(settings: DescriptorSettings) -> float:
+    """Fastest frequency change of one call that the trace and the sweep paths follow, Hz/s.
+
+    A sweep across the whole band in one second or, in windows shorter than a second
+    (short calls on high bands, such as whistles), across the whole band within one window.
+    """
+    return (settings.high_hz - settings.low_hz) / min(1.0, settings.window_s)
+
+
 def _max_jump_hz(settings: DescriptorSettings, df: float) -> float:
     """Largest change of the trace between consecutive frames of one call, Hz.
 
-    Three bins, or a sweep across the whole band in one second, whichever is more.
+    Three bins, or the fastest sweep of a call over one hop, whichever is more.
     """
-    return max(3.0 * df, (settings.high_hz - settings.low_hz) * settings.frame_hop_s)
+    return max(3.0 * df, _fastest_sweep_hz_per_s(settings) * settings.frame_hop_s)
 
 
 def _main_segment(trace: np.ndarray, active: np.ndarray, excess: np.ndarray, max_jump_hz: float) -> np.ndarray:

@@ -60,10 +60,11 @@ def _faint_sweep_amplitude(span_hz: float, seconds: float, db_over_n0: float) ->
 class Scene:
     """Pressure in µPa on a time axis, built event by event."""
 
-    def __init__(self, seconds: float, seed: int) -> None:
-        self.t = np.arange(int(FS * seconds)) / FS
+    def __init__(self, seconds: float, seed: int, fs: int = FS) -> None:
+        self.fs = fs
+        self.t = np.arange(int(fs * seconds)) / fs
         # White noise of PSD N0: variance N0·fs/2 (one-sided PSD 2σ²/fs, REFERENCES §5).
-        self.p = np.random.default_rng(seed).normal(0.0, np.sqrt(N0 * FS / 2.0), self.t.size)
+        self.p = np.random.default_rng(seed).normal(0.0, np.sqrt(N0 * fs / 2.0), self.t.size)
 
     def _gate(self, t0: float, seconds: float) -> tuple[np.ndarray, np.ndarray]:
         inside = (self.t >= t0) & (self.t < t0 + seconds)
@@ -88,15 +89,15 @@ class Scene:
     def band_noise(self, t0: float, seconds: float, low_hz: float, high_hz: float, psd: float, seed: int) -> None:
         """Gaussian noise of flat PSD ``psd`` (µPa²/Hz) between low_hz and high_hz (FFT mask)."""
         inside, tau = self._gate(t0, seconds)
-        white = np.random.default_rng(seed).normal(0.0, np.sqrt(psd * FS / 2.0), tau.size)
+        white = np.random.default_rng(seed).normal(0.0, np.sqrt(psd * self.fs / 2.0), tau.size)
         spectrum = np.fft.rfft(white)
-        f = np.fft.rfftfreq(tau.size, 1.0 / FS)
+        f = np.fft.rfftfreq(tau.size, 1.0 / self.fs)
         spectrum[(f < low_hz) | (f > high_hz)] = 0.0
         self.p[inside] += np.fft.irfft(spectrum, n=tau.size)
 
     def describe(self, folder, settings: DescriptorSettings, name: str) -> tuple[np.ndarray, np.ndarray]:
         path = folder / name
-        sf.write(path, samples_from_pressure(self.p, FS, CHAIN), FS, subtype="FLOAT")
+        sf.write(path, samples_from_pressure(self.p, self.fs, CHAIN), self.fs, subtype="FLOAT")
         tables = list(describe_file(path, CHAIN, settings))
         return np.concatenate([t.start_s for t in tables]), np.concatenate([t.values for t in tables])
 
@@ -329,24 +330,15 @@ def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):
     # within half a rate step, and a loud sweep near the cap all along (A²/2 = 5e9 µPa²
     # spread over the 150 Hz it crosses in one 10-ms frame is about 3e7 µPa²/Hz, 25 dB over
     # N0 = 1e5 µPa²/Hz).
-    fs = 32000
     settings = DescriptorSettings(
         low_hz=2000.0, high_hz=10000.0, resolution_hz=100.0, frame_hop_s=0.005, window_s=0.5, window_hop_s=0.125
     )
     path_s = round(0.3 * settings.window_s / (2 * settings.frame_hop_s)) * 2 * settings.frame_hop_s
     rate_step = 2 * 2 * settings.resolution_hz / path_s  # paths of 0.3 windows, as PATH_S above
-    n0 = 10.0 ** (N0_DB / 10.0)
-    t = np.arange(int(fs * 4.0)) / fs
-    p = np.random.default_rng(11).normal(0.0, np.sqrt(n0 * fs / 2.0), t.size)
+    scene = Scene(4.0, seed=11, fs=32000)
     t0, dur, f0, f1 = 2.0, 0.3, 3000.0, 7500.0
-    inside = (t >= t0) & (t < t0 + dur)
-    tau = t[inside] - t0
-    p[inside] += 1e5 * np.sin(2 * np.pi * (f0 * tau + (f1 - f0) / dur * tau**2 / 2))
-    path = tmp_path / "whistle.wav"
-    sf.write(path, samples_from_pressure(p, fs, CHAIN), fs, subtype="FLOAT")
-    tables = list(describe_file(path, CHAIN, settings))
-    start = np.concatenate([tb.start_s for tb in tables])
-    values = np.concatenate([tb.values for tb in tables])
+    scene.sweep(t0, dur, f0, (f1 - f0) / dur, 0.0, 1e5)
+    start, values = scene.describe(tmp_path, settings, "whistle.wav")
     names = descriptor_names(settings)
     # The window that starts 0.125 s before the sweep holds all of it.
     i = int(np.argmin(np.abs(start - 1.875)))
