@@ -105,6 +105,13 @@ class TrainingConfig:
         (``snr_db`` and the ``*_excess_db`` descriptors): the same call heard louder over
         the same noise never scores lower. Scikit-learn supports the constraint for two
         classes only, so a model of every label is not constrained.
+    slow_decoy_factor : float, 0..1, in a model of one target (``--target``), each
+        example of the target whose best sweep path stands at least
+        ``slow_decoy_min_excess_db`` above the noise floor is also kept as a background
+        example with its sweep rates (of the trace and of the path) multiplied by this
+        factor: another call sweeping the same band more slowly. 0 turns it off.
+    slow_decoy_min_excess_db : float, dB, how far above the floor a target example's
+        sweep path must stand for its rate to be measured well enough to copy
     """
 
     kind: str = "gradient-boosting"
@@ -121,6 +128,8 @@ class TrainingConfig:
     seed: int = 0
     descriptors: dict[str, Any] = field(default_factory=dict)
     monotone_excess: bool = True
+    slow_decoy_factor: float = 0.5
+    slow_decoy_min_excess_db: float = 15.0
 
     def __post_init__(self) -> None:
         if self.class_weight == "" and self.kind in MODEL_KINDS:
@@ -188,6 +197,8 @@ _CONSTRAINTS = [
     ("folds", lambda v: isinstance(v, int) and v >= 2, "an integer >= 2"),
     ("seed", lambda v: isinstance(v, int), "an integer"),
     ("monotone_excess", lambda v: isinstance(v, bool), "true or false"),
+    ("slow_decoy_factor", lambda v: isinstance(v, int | float) and 0 <= v < 1, "a number in 0..1 (0: off)"),
+    ("slow_decoy_min_excess_db", lambda v: isinstance(v, int | float) and v >= 0, "a number >= 0 (dB)"),
 ]
 
 _TABLES = {
@@ -204,6 +215,8 @@ _TABLES = {
         "target_background_ratio": "target_background_ratio",
         "hard_fraction": "hard_fraction",
         "min_overlap": "min_overlap",
+        "slow_decoy_factor": "slow_decoy_factor",
+        "slow_decoy_min_excess_db": "slow_decoy_min_excess_db",
     },
     "validation": {
         "group_by": "group_by",

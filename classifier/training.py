@@ -281,14 +281,22 @@ def collect_examples(
             config.hard_fraction,
             rng,
         )
-        parts_X += [X_pos, X_bg[idx]]
-        parts_y += [y_pos, np.full(idx.size, BACKGROUND, dtype=object)]
-        parts_w += [np.ones(len(y_pos)), weight]
-        parts_g += [g_pos, g_bg[idx]]
-        parts_s += [np.full(len(y_pos) + idx.size, lset.name, dtype=object)]
+        decoy_of, X_decoy = (
+            slow_decoys(X_pos, y_pos, names, target, config) if target else (np.zeros(0, int), X_pos[:0])
+        )
+        n_decoy = X_decoy.shape[0]
+        parts_X += [X_pos, X_bg[idx], X_decoy]
+        parts_y += [y_pos, np.full(idx.size + n_decoy, BACKGROUND, dtype=object)]
+        # Decoys are not windows of the recordings: they teach the trees to rank and have
+        # no weight in the calibration, which stays that of the windows recorded.
+        parts_w += [np.ones(len(y_pos)), weight, np.zeros(n_decoy)]
+        parts_g += [g_pos, g_bg[idx], g_pos[decoy_of]]  # a decoy stays in its call's fold
+        parts_s += [np.full(len(y_pos) + idx.size + n_decoy, lset.name, dtype=object)]
         # Background is drawn only from complete files (partial files give none).
-        parts_p += [np.concatenate(pos_p) if pos_p else np.zeros(0, bool), np.zeros(idx.size, bool)]
+        parts_p += [np.concatenate(pos_p) if pos_p else np.zeros(0, bool), np.zeros(idx.size + n_decoy, bool)]
         counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size + np.sum(y_pos == BACKGROUND))}
+        if n_decoy:
+            counts[lset.name][DECOY_COUNT] = n_decoy
     X = np.concatenate(parts_X).astype(np.float32)
     y = np.concatenate(parts_y).astype(str)
     if np.unique(y).size < 2:
@@ -310,6 +318,50 @@ def collect_examples(
         grouping,
         np.concatenate(parts_p).astype(bool),
     )
+
+
+#: Key of ``ExampleSet.counts`` for the slow decoys of a set (background examples made
+#: from its target examples, see :func:`slow_decoys`), apart from the labels' counts.
+DECOY_COUNT = "(slow decoys)"
+SWEEP_RATES = ("trace_sweep_rate_hz_per_s", "sweep_path_rate_hz_per_s")
+
+
+def slow_decoys(
+    X: np.ndarray, y: np.ndarray, names: list[str], target: str, config: TrainingConfig
+) -> tuple[np.ndarray, np.ndarray]:
+    """Background examples made from target examples: the same windows sweeping slower.
+
+    A model of one target learns from the target and whatever else the training site
+    holds. Where the site holds no other animal sweeping the same band at another rate,
+    nothing teaches the trees that the rate matters, and at another site such a call,
+    longer and so filling more of its window than the target, can outrank the target
+    itself. Each well-measured target example (best sweep path at least
+    ``slow_decoy_min_excess_db`` above the floor) is copied with its sweep rates
+    multiplied by ``slow_decoy_factor``, every other descriptor unchanged.
+
+    Parameters
+    ----------
+    X : np.ndarray [shape=(n, n_descriptors)], descriptors in physical units
+    y : np.ndarray [shape=(n,)], class of each row
+    names : list of str, descriptor names of the columns of ``X``
+    target : str, the label of the model's target
+    config : TrainingConfig, ``slow_decoy_factor`` (dimensionless) and
+        ``slow_decoy_min_excess_db`` (dB)
+
+    Returns
+    -------
+    rows : np.ndarray [shape=(n_decoys,)], int, the row of ``X`` each decoy was made from
+    decoys : np.ndarray [shape=(n_decoys, n_descriptors)], float32; rates in Hz/s
+    """
+    if config.slow_decoy_factor <= 0 or "sweep_path_excess_db" not in names:
+        return np.zeros(0, dtype=int), np.empty((0, X.shape[1]), dtype=np.float32)
+    path = X[:, names.index("sweep_path_excess_db")]
+    rows = np.flatnonzero((y == target) & (path >= config.slow_decoy_min_excess_db))
+    decoys = np.array(X[rows], dtype=np.float32)
+    for n in SWEEP_RATES:
+        if n in names:
+            decoys[:, names.index(n)] *= config.slow_decoy_factor
+    return rows, decoys
 
 
 #: Blocks of recording time used as groups when hours and files are too few, s.

@@ -1,0 +1,132 @@
+"""Slow decoys: strong target examples copied as background, sweeping at a share of their rate."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import numpy as np
+import pytest
+import soundfile as sf
+from callsieve.classifier.config import TrainingConfig, load_training_config
+from callsieve.classifier.deployment import load_deployment
+from callsieve.classifier.labels import BACKGROUND, read_label_table
+from callsieve.classifier.training import (
+    DECOY_COUNT,
+    SWEEP_RATES,
+    LabelledSet,
+    collect_examples,
+    slow_decoys,
+    train_model,
+)
+from callsieve.features.calibration import RecordingChain, samples_from_pressure
+from callsieve.features.descriptors import DescriptorSettings, descriptor_names
+from callsieve.features.pipeline import describe_file
+from callsieve.features.synthesis import CallShape, call_waveform
+
+SETTINGS = DescriptorSettings(
+    low_hz=60.0, high_hz=200.0, resolution_hz=5.0, frame_hop_s=0.05, window_s=1.7, window_hop_s=0.4
+)
+
+
+def test_decoys_copy_only_strong_target_rows_and_change_only_their_rates():
+    names = descriptor_names(SETTINGS)
+    rng = np.random.default_rng(0)
+    X = rng.normal(0.0, 30.0, (40, len(names))).astype(np.float32)
+    path = names.index("sweep_path_excess_db")
+    X[:, path] = np.linspace(0.0, 39.0, 40)  # dB over the floor
+    y = np.array(["up", BACKGROUND] * 20, dtype=object)
+    config = TrainingConfig(slow_decoy_factor=0.5, slow_decoy_min_excess_db=15.0)
+    rows, decoys = slow_decoys(X, y, names, "up", config)
+    expected = np.flatnonzero((y == "up") & (X[:, path] >= 15.0))
+    np.testing.assert_array_equal(rows, expected)
+    rate = [names.index(n) for n in SWEEP_RATES]
+    other = [k for k in range(len(names)) if k not in rate]
+    np.testing.assert_array_equal(decoys[:, rate], X[rows][:, rate] * 0.5)
+    np.testing.assert_array_equal(decoys[:, other], X[rows][:, other])
+    # Off: none.
+    rows, decoys = slow_decoys(X, y, names, "up", replace(config, slow_decoy_factor=0.0))
+    assert rows.size == 0 and decoys.shape == (0, len(names))
+
+
+def test_decoy_settings_are_checked():
+    with pytest.raises(Exception, match="slow_decoy_factor"):
+        TrainingConfig(slow_decoy_factor=1.5)
+    with pytest.raises(Exception, match="slow_decoy_min_excess_db"):
+        TrainingConfig(slow_decoy_min_excess_db=-3.0)
+
+
+def test_decoys_are_background_that_ranks_but_does_not_calibrate(labelled):
+    # A decoy is not a window of the recordings: weight 0 (the calibration and the
+    # cross-validated metrics stay those of the windows recorded), the group of the call
+    # it was made from (so no fold learns from a copy of a call it is tested on), counted
+    # apart from the labels.
+    manifest, labels, config_path = labelled
+    dep = load_deployment(manifest)
+    lset = LabelledSet(dep, read_label_table(labels, [dep]), str(labels))
+    config = load_training_config(config_path)
+    with_decoys = collect_examples([lset], SETTINGS, replace(config, slow_decoy_factor=0.5), target="up")
+    without = collect_examples([lset], SETTINGS, replace(config, slow_decoy_factor=0.0), target="up")
+    names = with_decoys.names
+    path = names.index("sweep_path_excess_db")
+    strong = (without.y == "up") & (without.X[:, path] >= config.slow_decoy_min_excess_db)
+    n_decoys = int(strong.sum())
+    assert n_decoys > 10  # the fixture's calls reach 15 dB above the floor often enough
+    assert with_decoys.X.shape[0] == without.X.shape[0] + n_decoys
+    assert with_decoys.counts[str(labels)][DECOY_COUNT] == n_decoys
+    assert DECOY_COUNT not in without.counts[str(labels)]
+    decoy = with_decoys.weight == 0.0
+    assert int(decoy.sum()) == n_decoys and np.all(with_decoys.y[decoy] == BACKGROUND)
+    rate = names.index("sweep_path_rate_hz_per_s")
+    np.testing.assert_allclose(np.sort(with_decoys.X[decoy, rate]), np.sort(without.X[strong, rate] * 0.5), rtol=1e-6)
+    assert set(with_decoys.groups[decoy].tolist()) <= set(without.groups[strong].tolist())
+
+
+def _sweeps_file(path, shapes, level_db, fs=2000, noise_db=65.0, seed=5):
+    """Sweeps at ``level_db`` dB re 1 µPa, one every 10 s from 5 s, in white noise of PSD
+    ``noise_db`` dB re 1 µPa²/Hz; returns the start times (s)."""
+    chain = RecordingChain.flat(2.5, -170.0, 40.0)
+    rng = np.random.default_rng(seed)
+    starts = 5.0 + 10.0 * np.arange(len(shapes))
+    t = np.arange(int(fs * (starts[-1] + 6.0))) / fs
+    p = rng.normal(0.0, np.sqrt(10 ** (noise_db / 10) * fs / 2), t.size)
+    for shape, s in zip(shapes, starts, strict=True):
+        p += call_waveform(shape, t - s, np.sqrt(2) * 10 ** (level_db / 20))
+    sf.write(path, samples_from_pressure(p, fs, chain), fs, subtype="PCM_16")
+    return chain, starts
+
+
+def test_a_model_with_decoys_scores_a_slower_sweep_of_the_same_band_lower(labelled, tmp_path):
+    # The fixture's target sweeps up 80 -> 160 Hz in 0.9-1.3 s (60-90 Hz/s); its only
+    # other label sweeps down. A slower upsweep over the same start (80 -> 115 Hz in
+    # 1.3 s, 27 Hz/s), loud, is another call. Without decoys nothing at the training site
+    # tells the trees that the rate matters, only its sign; with them it is learned. The
+    # target's own calls at the same level must still score high. Synthetic truth: the
+    # calls are written by call_waveform at known rates.
+    manifest, labels, config_path = labelled
+    dep = load_deployment(manifest)
+    lset = LabelledSet(dep, read_label_table(labels, [dep]), str(labels))
+    descriptors = {k: v for k, v in SETTINGS.to_dict().items() if k != "version"}
+    config = replace(load_training_config(config_path), descriptors=descriptors)
+    slow = [CallShape("sweep", 80.0, 115.0, 1.3)] * 6
+    fast = [CallShape("sweep", 80.0, 160.0, 1.1)] * 6
+    chain, starts = _sweeps_file(tmp_path / "test.wav", slow + fast, 113.0)
+    tables = list(describe_file(tmp_path / "test.wav", chain, SETTINGS))
+    values = np.concatenate([t.values for t in tables])
+    start = np.concatenate([t.start_s for t in tables])
+
+    def best_score(model, s0, dur):
+        inside = (start <= s0) & (start + SETTINGS.window_s >= s0 + dur)
+        p = model.estimator.predict_proba(values[inside])[:, model.classes.index("up")]
+        return float(p.max())
+
+    scores = {}
+    for factor in (0.0, 0.5):
+        model = train_model([lset], replace(config, slow_decoy_factor=factor), target="up").model
+        scores[factor] = (
+            np.median([best_score(model, s, c.duration_s) for s, c in zip(starts[:6], slow, strict=True)]),
+            np.median([best_score(model, s, c.duration_s) for s, c in zip(starts[6:], fast, strict=True)]),
+        )
+    (slow_without, fast_without), (slow_with, fast_with) = scores[0.0], scores[0.5]
+    assert slow_without > 0.5, scores  # the confusion exists without decoys
+    assert slow_with < 0.5 * slow_without, scores
+    assert fast_with > 0.8 and fast_without > 0.8, scores
