@@ -101,6 +101,11 @@ def format_training_report(report: dict) -> str:
         f"band             {s['low_hz']:g}-{s['high_hz']:g} Hz, resolution {s['resolution_hz']:g} Hz, "
         f"window {s['window_s']:g} s every {s['window_hop_s']:g} s",
         "examples         " + ", ".join(f"{k} {v}" for k, v in sorted(report["examples"].items())),
+        *(
+            [f"slow decoys      {report['slow_decoys']} background rows made from target rows, in no count or metric"]
+            if report.get("slow_decoys")
+            else []
+        ),
         f"cross-validation {report['cv_folds']} folds, grouped by {report['cv_grouping']}; per class: "
         "average precision, precision and recall at 0.5",
     ]

@@ -197,7 +197,7 @@ _CONSTRAINTS = [
     ("folds", lambda v: isinstance(v, int) and v >= 2, "an integer >= 2"),
     ("seed", lambda v: isinstance(v, int), "an integer"),
     ("monotone_excess", lambda v: isinstance(v, bool), "true or false"),
-    ("slow_decoy_factor", lambda v: isinstance(v, int | float) and 0 <= v < 1, "a number in 0..1 (0: off)"),
+    ("slow_decoy_factor", lambda v: isinstance(v, int | float) and 0 <= v < 1, "a number in [0, 1) (0: off)"),
     ("slow_decoy_min_excess_db", lambda v: isinstance(v, int | float) and v >= 0, "a number >= 0 (dB)"),
 ]
 

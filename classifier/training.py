@@ -102,6 +102,13 @@ class ExampleSet:
     grouping: str = ""  # what the cross-validation groups really are
     # Examples from files with only partial (verified) rows: stretches a model chose.
     partial: np.ndarray | None = None
+    # Slow decoys (background made from target examples, see slow_decoys): not windows of
+    # the recordings, so left out of the calibration, the metrics and the counts.
+    decoy: np.ndarray | None = None
+
+    def is_decoy(self) -> np.ndarray:
+        """Which examples are slow decoys (all False where none were made)."""
+        return np.zeros(self.y.size, dtype=bool) if self.decoy is None else self.decoy
 
 
 def _nice_resolution(target_hz: float) -> float:
@@ -206,7 +213,7 @@ def collect_examples(
     names = descriptor_names(settings)
     rng = np.random.default_rng(config.seed)
     snr_col = names.index("snr_db")
-    parts_X, parts_y, parts_w, parts_g, parts_s, parts_p = [], [], [], [], [], []
+    parts_X, parts_y, parts_w, parts_g, parts_s, parts_p, parts_d = [], [], [], [], [], [], []
     counts: dict[str, dict[str, int]] = {}
     n_described, seconds = 0, 0.0
     keep_classes = {target} if target else None
@@ -292,8 +299,11 @@ def collect_examples(
         parts_w += [np.ones(len(y_pos)), weight, np.zeros(n_decoy)]
         parts_g += [g_pos, g_bg[idx], g_pos[decoy_of]]  # a decoy stays in its call's fold
         parts_s += [np.full(len(y_pos) + idx.size + n_decoy, lset.name, dtype=object)]
-        # Background is drawn only from complete files (partial files give none).
-        parts_p += [np.concatenate(pos_p) if pos_p else np.zeros(0, bool), np.zeros(idx.size + n_decoy, bool)]
+        # Background is drawn only from complete files (partial files give none); a decoy
+        # is partial where the call it was made from is.
+        p_pos = np.concatenate(pos_p) if pos_p else np.zeros(0, bool)
+        parts_p += [p_pos, np.zeros(idx.size, bool), p_pos[decoy_of]]
+        parts_d += [np.zeros(len(y_pos) + idx.size, bool), np.ones(n_decoy, bool)]
         counts[lset.name] = dict(Counter(y_pos.tolist())) | {BACKGROUND: int(idx.size + np.sum(y_pos == BACKGROUND))}
         if n_decoy:
             counts[lset.name][DECOY_COUNT] = n_decoy
@@ -317,6 +327,7 @@ def collect_examples(
         seconds / 3600.0,
         grouping,
         np.concatenate(parts_p).astype(bool),
+        np.concatenate(parts_d).astype(bool),
     )
 
 
@@ -469,9 +480,10 @@ def _class_metrics(y: np.ndarray, proba: np.ndarray, classes: list[str], weight:
             continue
         decided = proba[:, i] >= 0.5
         tp = float(weight[truth & decided].sum())
+        w_decided = float(weight[decided].sum())
         out[c] = {
             "average_precision": float(average_precision_score(truth, proba[:, i], sample_weight=weight)),
-            "precision_at_0.5": tp / float(weight[decided].sum()) if decided.any() else float("nan"),
+            "precision_at_0.5": tp / w_decided if w_decided > 0 else float("nan"),
             "recall_at_0.5": tp / float(weight[truth].sum()),
             "examples": int(truth.sum()),
         }
@@ -491,16 +503,19 @@ def cross_validate(estimator: CallClassifier, examples: ExampleSet) -> dict[str,
         ``folds`` (per fold: classes' metrics and confusion matrix), ``overall`` (the same
         over all out-of-fold probabilities), ``classes``, ``n_folds``.
     """
-    y = examples.y
+    # Decoys are not windows of the recordings: none of the figures counts them.
+    real = ~examples.is_decoy()
+    y, weight = examples.y[real], examples.weight[real]
     classes = [str(c) for c in estimator.classes_]
-    oof = estimator.oof_proba_
+    oof = estimator.oof_proba_[real]
+    fold = estimator.fold_[real]
     pred = np.array(classes)[np.argmax(oof, axis=1)]
     folds = []
     for k in range(int(estimator.fold_.max()) + 1):
-        test = estimator.fold_ == k
+        test = fold == k
         folds.append(
             {
-                "metrics": _class_metrics(y[test], oof[test], classes, examples.weight[test]),
+                "metrics": _class_metrics(y[test], oof[test], classes, weight[test]),
                 "confusion": confusion_matrix(y[test], pred[test], labels=classes).tolist(),
                 "test_examples": int(test.sum()),
             }
@@ -510,7 +525,7 @@ def cross_validate(estimator: CallClassifier, examples: ExampleSet) -> dict[str,
         "n_folds": len(folds),
         "folds": folds,
         "overall": {
-            "metrics": _class_metrics(y, oof, classes, examples.weight),
+            "metrics": _class_metrics(y, oof, classes, weight),
             "confusion": confusion_matrix(y, pred, labels=classes).tolist(),
         },
     }
@@ -551,7 +566,8 @@ def calibration_weight(examples: ExampleSet) -> np.ndarray:
     verified, there is nothing else to calibrate on, and all are used.
     """
     partial = examples.partial
-    if partial is None or not partial.any() or partial.all():
+    real = ~examples.is_decoy()
+    if partial is None or not partial[real].any() or partial[real].all():
         return examples.weight
     return np.where(partial, 0.0, examples.weight)
 
@@ -605,8 +621,17 @@ def train_model(
         estimator = _estimator(config, examples.names, target).fit(
             examples.X, examples.y, sample_weight=weight, groups=examples.groups
         )
+        # The screen reads only levels over the floor, which a decoy shares with the call it
+        # was made from: to the screen a decoy would be a call labelled background.
+        real = ~examples.is_decoy()
         cascade = fit_cascade(
-            examples.X, examples.y, examples.weight, estimator.fold_, examples.names, settings, BACKGROUND
+            examples.X[real],
+            examples.y[real],
+            examples.weight[real],
+            estimator.fold_[real],
+            examples.names,
+            settings,
+            BACKGROUND,
         )
     t2 = time.perf_counter()
     validation = cross_validate(estimator, examples) | {"group_by": config.group_by, "grouping": examples.grouping}
@@ -622,7 +647,8 @@ def train_model(
             for s in sets
         ],
         "examples_per_set": examples.counts,
-        "examples": dict(Counter(examples.y.tolist())),
+        "examples": dict(Counter(examples.y[~examples.is_decoy()].tolist())),
+        "slow_decoys": int(examples.is_decoy().sum()),
         "windows_described": examples.windows_described,
         # Verified examples rank but do not calibrate (see calibration_weight).
         "calibration_examples": int(np.sum(weight > 0)),
@@ -812,6 +838,7 @@ def train(
         "settings": result.model.settings.to_dict(),
         "classes": result.model.classes,
         "examples": result.model.summary["examples"],
+        "slow_decoys": result.model.summary.get("slow_decoys", 0),
         "examples_per_set": result.model.summary["examples_per_set"],
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],

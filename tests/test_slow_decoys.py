@@ -78,7 +78,34 @@ def test_decoys_are_background_that_ranks_but_does_not_calibrate(labelled):
     assert int(decoy.sum()) == n_decoys and np.all(with_decoys.y[decoy] == BACKGROUND)
     rate = names.index("sweep_path_rate_hz_per_s")
     np.testing.assert_allclose(np.sort(with_decoys.X[decoy, rate]), np.sort(without.X[strong, rate] * 0.5), rtol=1e-6)
-    assert set(with_decoys.groups[decoy].tolist()) <= set(without.groups[strong].tolist())
+    # Row for row, the group of the call each decoy was made from (the draw of background
+    # windows does not depend on the decoys, so both sets hold the same other rows).
+    np.testing.assert_array_equal(with_decoys.groups[decoy], without.groups[strong])
+    np.testing.assert_array_equal(with_decoys.is_decoy(), decoy)
+    # A model of every label has none.
+    every = collect_examples([lset], SETTINGS, replace(config, slow_decoy_factor=0.5))
+    assert not every.is_decoy().any() and np.all(every.weight > 0)
+
+
+def test_decoys_leave_calibration_possible_when_every_real_example_is_verified():
+    # Retraining on verified tables only: every real example is partial, so all of them
+    # calibrate (calibration_weight); decoys, weight 0, must not turn that into "some are
+    # not verified", which would zero every weight and leave nothing to calibrate on.
+    from callsieve.classifier.training import ExampleSet, calibration_weight
+
+    y = np.array(["up", "up", BACKGROUND, BACKGROUND], dtype=object)
+    for decoy_partial in (True, False):
+        examples = ExampleSet(
+            np.zeros((4, 1), np.float32),
+            y,
+            np.array([1.0, 1.0, 1.0, 0.0]),
+            np.arange(4),
+            np.full(4, "t"),
+            ["x"],
+            partial=np.array([True, True, True, decoy_partial]),
+            decoy=np.array([False, False, False, True]),
+        )
+        np.testing.assert_array_equal(calibration_weight(examples), [1.0, 1.0, 1.0, 0.0])
 
 
 def _sweeps_file(path, shapes, level_db, fs=2000, noise_db=65.0, seed=5):
@@ -121,7 +148,13 @@ def test_a_model_with_decoys_scores_a_slower_sweep_of_the_same_band_lower(labell
 
     scores = {}
     for factor in (0.0, 0.5):
-        model = train_model([lset], replace(config, slow_decoy_factor=factor), target="up").model
+        result = train_model([lset], replace(config, slow_decoy_factor=factor), target="up")
+        model, decoy = result.model, result.examples.is_decoy()
+        # The decoys are counted apart: the examples, the cross-validated confusion and
+        # metrics hold the windows of the recordings only.
+        assert model.summary["slow_decoys"] == int(decoy.sum()) and (decoy.sum() > 0) == (factor > 0)
+        assert sum(model.summary["examples"].values()) == int((~decoy).sum())
+        assert np.sum(result.validation["overall"]["confusion"]) == int((~decoy).sum())
         scores[factor] = (
             np.median([best_score(model, s, c.duration_s) for s, c in zip(starts[:6], slow, strict=True)]),
             np.median([best_score(model, s, c.duration_s) for s, c in zip(starts[6:], fast, strict=True)]),
