@@ -17,7 +17,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from callsieve.features.descriptors import DescriptorSettings, descriptor_names, is_absolute_level
+from callsieve.features.descriptors import (
+    DescriptorSettings,
+    descriptor_names,
+    is_absolute_level,
+    sweep_path_rate_step_hz_per_s,
+)
 from callsieve.features.pipeline import describe_file
 from callsieve.features.streaming import AudioReadError
 from sklearn.metrics import average_precision_score, confusion_matrix
@@ -289,7 +294,9 @@ def collect_examples(
             rng,
         )
         decoy_of, X_decoy = (
-            slow_decoys(X_pos, y_pos, names, target, config) if target else (np.zeros(0, int), X_pos[:0])
+            slow_decoys(X_pos, y_pos, names, target, config, sweep_path_rate_step_hz_per_s(settings))
+            if target
+            else (np.zeros(0, int), X_pos[:0])
         )
         n_decoy = X_decoy.shape[0]
         parts_X += [X_pos, X_bg[idx], X_decoy]
@@ -338,7 +345,7 @@ SWEEP_RATES = ("trace_sweep_rate_hz_per_s", "sweep_path_rate_hz_per_s")
 
 
 def slow_decoys(
-    X: np.ndarray, y: np.ndarray, names: list[str], target: str, config: TrainingConfig
+    X: np.ndarray, y: np.ndarray, names: list[str], target: str, config: TrainingConfig, rate_step_hz_per_s: float
 ) -> tuple[np.ndarray, np.ndarray]:
     """Background examples made from target examples: the same windows sweeping slower.
 
@@ -348,7 +355,10 @@ def slow_decoys(
     longer and so filling more of its window than the target, can outrank the target
     itself. Each well-measured target example (best sweep path at least
     ``slow_decoy_min_excess_db`` above the floor) is copied with its sweep rates
-    multiplied by ``slow_decoy_factor``, every other descriptor unchanged.
+    multiplied by ``slow_decoy_factor``, every other descriptor unchanged. Only where that
+    moves the faster of the two rates by at least one step of the paths' rates: a decoy
+    the descriptors could not tell from its call (a flat tone, a slow drift) would teach
+    the trees that the call itself is background.
 
     Parameters
     ----------
@@ -358,6 +368,8 @@ def slow_decoys(
     target : str, the label of the model's target
     config : TrainingConfig, ``slow_decoy_factor`` (dimensionless) and
         ``slow_decoy_min_excess_db`` (dB)
+    rate_step_hz_per_s : float, Hz/s, the step between the sweep paths' rates
+        (:func:`~callsieve.features.descriptors.sweep_path_rate_step_hz_per_s`)
 
     Returns
     -------
@@ -367,7 +379,11 @@ def slow_decoys(
     if config.slow_decoy_factor <= 0 or "sweep_path_excess_db" not in names:
         return np.zeros(0, dtype=int), np.empty((0, X.shape[1]), dtype=np.float32)
     path = X[:, names.index("sweep_path_excess_db")]
-    rows = np.flatnonzero((y == target) & (path >= config.slow_decoy_min_excess_db))
+    rates = np.abs(X[:, [names.index(n) for n in SWEEP_RATES if n in names]])
+    moved = np.max(rates, axis=1) * (1.0 - config.slow_decoy_factor)
+    rows = np.flatnonzero(
+        (y == target) & (path >= config.slow_decoy_min_excess_db) & (moved >= rate_step_hz_per_s * (1.0 - 1e-9))
+    )
     decoys = np.array(X[rows], dtype=np.float32)
     for n in SWEEP_RATES:
         if n in names:

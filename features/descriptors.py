@@ -508,10 +508,10 @@ def _sweep_path(
     np.ndarray [shape=(n_windows, 3)]: mean excess (dB), rate (Hz/s), midpoint frequency (Hz)
     """
     hop = settings.frame_hop_s
-    stride = 2 if n_w >= 9 else 1
-    points = int(round(_PATH_SHARE * settings.window_s / (stride * hop))) + 1
-    points = int(min(max(points, 2), (n_w - 1) // stride + 1))
+    df = float(frequency_hz[1] - frequency_hz[0])
+    stride, points, step = _path_geometry(settings, n_w, df)
     span = stride * (points - 1)  # frames from a path's first point to its last
+    duration = span * hop
     e = np.clip(excess_db, 0.0, _PATH_CAP_DB).astype(np.float32)
     f = np.asarray(frequency_hz, dtype=np.float64)
     if e.shape[0] % 2:
@@ -519,14 +519,10 @@ def _sweep_path(
         e = np.concatenate([e, e[-1:]])
         f = np.concatenate([f, f[-1:]])
     e = np.maximum(e[0::2], e[1::2])
-    df2 = 2.0 * float(frequency_hz[1] - frequency_hz[0])
+    df2 = 2.0 * df
     centre_hz = 0.5 * (f[0::2] + f[1::2])
-    duration = span * hop
-    # Neighbouring rates' ends lie two coarse bins apart, so any straight sweep ends within
-    # one coarse bin of the nearest rate's path. Rates reach the fastest sweep of a call
-    # (as the trace's jumps do), at most _PATH_RATES on each side.
-    step = 2.0 * df2 / max(duration, hop)
-    # The 1e-9 keeps a limit that is a whole number of steps from rounding one step short.
+    # Rates reach the fastest sweep of a call (as the trace's jumps do), at most
+    # _PATH_RATES on each side. The 1e-9 keeps a limit that is a whole number of steps from rounding one step short.
     n_side = int(min(_PATH_RATES, np.floor(_fastest_sweep_hz_per_s(settings) / step + 1e-9)))
     rates = np.arange(-n_side, n_side + 1) * step
     lag_s = np.arange(points) * stride * hop
@@ -573,6 +569,35 @@ def _sweep_path(
         mid_hz = centre_hz[bin_k] + rates[r_k] * duration / 2.0
         out[mine] = np.column_stack([best[k] / points, rates[r_k], mid_hz])
     return out
+
+
+def _path_geometry(settings: DescriptorSettings, n_w: int, df: float) -> tuple[int, int, float]:
+    """Frames between a sweep path's points, its number of points, and its rate step (Hz/s).
+
+    Neighbouring rates' ends lie two coarse bins (of two grid bins each) apart, so any
+    straight sweep ends within one coarse bin of the nearest rate's path.
+    """
+    hop = settings.frame_hop_s
+    stride = 2 if n_w >= 9 else 1
+    points = int(round(_PATH_SHARE * settings.window_s / (stride * hop))) + 1
+    points = int(min(max(points, 2), (n_w - 1) // stride + 1))
+    duration = stride * (points - 1) * hop  # from a path's first point to its last, s
+    return stride, points, 2.0 * (2.0 * df) / max(duration, hop)
+
+
+def sweep_path_rate_step_hz_per_s(settings: DescriptorSettings) -> float:
+    """Step between the rates of the sweep paths (``sweep_path_rate_hz_per_s``), Hz/s.
+
+    Parameters
+    ----------
+    settings : DescriptorSettings, the grid (resolution in Hz, frame hop and window in s)
+
+    Returns
+    -------
+    float, Hz/s; the path's rate is a whole multiple of it
+    """
+    f = settings.grid.frequency_hz
+    return _path_geometry(settings, settings.frames_per_window, float(f[1] - f[0]))[2]
 
 
 def _fastest_sweep_hz_per_s(settings: DescriptorSettings) -> float:

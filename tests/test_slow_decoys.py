@@ -19,7 +19,7 @@ from callsieve.classifier.training import (
     train_model,
 )
 from callsieve.features.calibration import RecordingChain, samples_from_pressure
-from callsieve.features.descriptors import DescriptorSettings, descriptor_names
+from callsieve.features.descriptors import DescriptorSettings, descriptor_names, sweep_path_rate_step_hz_per_s
 from callsieve.features.pipeline import describe_file
 from callsieve.features.synthesis import CallShape, call_waveform
 
@@ -28,23 +28,35 @@ SETTINGS = DescriptorSettings(
 )
 
 
-def test_decoys_copy_only_strong_target_rows_and_change_only_their_rates():
+def test_decoys_copy_only_strong_swept_target_rows_and_change_only_their_rates():
     names = descriptor_names(SETTINGS)
+    step = sweep_path_rate_step_hz_per_s(SETTINGS)
     rng = np.random.default_rng(0)
     X = rng.normal(0.0, 30.0, (40, len(names))).astype(np.float32)
     path = names.index("sweep_path_excess_db")
+    rate = [names.index(n) for n in SWEEP_RATES]
     X[:, path] = np.linspace(0.0, 39.0, 40)  # dB over the floor
+    # Path rates: whole steps, from -3 to +4 (0 and one step: a tone, a slow drift); the
+    # trace's rate a little off the path's, as measured.
+    X[:, rate[1]] = step * (np.arange(40) % 8 - 3)
+    X[:, rate[0]] = X[:, rate[1]] + rng.uniform(-0.3, 0.3, 40) * step
     y = np.array(["up", BACKGROUND] * 20, dtype=object)
     config = TrainingConfig(slow_decoy_factor=0.5, slow_decoy_min_excess_db=15.0)
-    rows, decoys = slow_decoys(X, y, names, "up", config)
-    expected = np.flatnonzero((y == "up") & (X[:, path] >= 15.0))
+    rows, decoys = slow_decoys(X, y, names, "up", config, step)
+    # Halving must move one of the rates by a whole path step at least.
+    swept = np.max(np.abs(X[:, rate]), axis=1) >= 2 * step - 1e-6
+    expected = np.flatnonzero((y == "up") & (X[:, path] >= 15.0) & swept)
+    assert expected.size > 5
     np.testing.assert_array_equal(rows, expected)
-    rate = [names.index(n) for n in SWEEP_RATES]
     other = [k for k in range(len(names)) if k not in rate]
     np.testing.assert_array_equal(decoys[:, rate], X[rows][:, rate] * 0.5)
     np.testing.assert_array_equal(decoys[:, other], X[rows][:, other])
+    # A flat tone never gives a decoy, however loud: halved, it would be its own call.
+    tone = X.copy()
+    tone[:, rate] = rng.uniform(-0.5, 0.5, (40, 2)) * step
+    assert slow_decoys(tone, y, names, "up", config, step)[0].size == 0
     # Off: none.
-    rows, decoys = slow_decoys(X, y, names, "up", replace(config, slow_decoy_factor=0.0))
+    rows, decoys = slow_decoys(X, y, names, "up", replace(config, slow_decoy_factor=0.0), step)
     assert rows.size == 0 and decoys.shape == (0, len(names))
 
 
@@ -68,7 +80,12 @@ def test_decoys_are_background_that_ranks_but_does_not_calibrate(labelled):
     without = collect_examples([lset], SETTINGS, replace(config, slow_decoy_factor=0.0), target="up")
     names = with_decoys.names
     path = names.index("sweep_path_excess_db")
-    strong = (without.y == "up") & (without.X[:, path] >= config.slow_decoy_min_excess_db)
+    moved = np.max(np.abs(without.X[:, [names.index(n) for n in SWEEP_RATES]]), axis=1) * 0.5
+    strong = (
+        (without.y == "up")
+        & (without.X[:, path] >= config.slow_decoy_min_excess_db)
+        & (moved >= sweep_path_rate_step_hz_per_s(SETTINGS) - 1e-6)
+    )
     n_decoys = int(strong.sum())
     assert n_decoys > 10  # the fixture's calls reach 15 dB above the floor often enough
     assert with_decoys.X.shape[0] == without.X.shape[0] + n_decoys
