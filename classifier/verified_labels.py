@@ -46,12 +46,14 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
     negative), "another call type" that type, ``unsure`` nothing. With several reviewers the
     majority decides (a tie is unsure; a vote naming another type counts as no, see
     ``verdicts.verdict_on_label``), and the type named most often when the majority is no
-    and most of those reviewers named one.
+    and most of those reviewers named one. A detection that runs past its file's end (or
+    starts before it), as one across a join of a continuous recording may, gives the part
+    inside its file; one wholly outside it is left out and counted (``outside_file``).
     """
     # One read: every verdict of the run with its detection, file, model and latest sample.
     rows = con.execute(
         "SELECT v.detection_id, v.verdict, v.note, v.reviewer, d.start_s, d.end_s, d.low_hz, d.high_hz, "
-        "d.label, d.superseded, f.name AS file, dep.name AS deployment, r.model_sha256, "
+        "d.label, d.superseded, f.name AS file, f.duration_s, dep.name AS deployment, r.model_sha256, "
         "(SELECT MAX(i.sample_id) FROM review_items i WHERE i.detection_id=d.detection_id) AS sample_id "
         "FROM verdicts v JOIN detections d USING (detection_id) JOIN files f ON f.file_id=d.file_id "
         "JOIN runs r ON r.run_id=d.run_id JOIN deployments dep ON dep.deployment_id=f.deployment_id "
@@ -61,7 +63,7 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
     by_detection: dict[int, list[sqlite3.Row]] = {}
     for r in rows:
         by_detection.setdefault(r["detection_id"], []).append(r)
-    left_out = {"unsure": 0, "superseded": 0}
+    left_out = {"unsure": 0, "superseded": 0, "outside_file": 0}
     out = []
     for det_id, vs in by_detection.items():
         d = vs[0]
@@ -82,12 +84,19 @@ def verified_label_rows(con: sqlite3.Connection, run_id: int) -> tuple[list[dict
         else:
             left_out["unsure"] += 1
             continue
+        # In a continuous recording a detection belongs to the file where its peak window
+        # starts, and may run past that file's end (or start before it): a label table
+        # holds stretches of one file, so the verified stretch is the part inside it.
+        start, end = max(d["start_s"], 0.0), min(d["end_s"], d["duration_s"])
+        if end <= start:
+            left_out["outside_file"] += 1
+            continue
         out.append(
             {
                 "deployment": d["deployment"],
                 "file": d["file"],
-                "start_s": round(d["start_s"], 4),
-                "end_s": round(d["end_s"], 4),
+                "start_s": round(start, 4),
+                "end_s": round(end, 4),
                 "label": label,
                 "low_hz": round(d["low_hz"], 2),
                 "high_hz": round(d["high_hz"], 2),
@@ -112,7 +121,8 @@ def export_verified_labels(
     -------
     dict
         ``run_id``, ``rows``, ``by_label`` (rows per label), ``left_out`` (unsure,
-        superseded), ``out``.
+        superseded, outside_file: detections of a continuous recording that lie wholly
+        outside their file, in a neighbouring one), ``out``.
     """
     out = check_output(
         out,
@@ -147,7 +157,8 @@ def _cmd_export_labels(args: argparse.Namespace) -> int:
     print(
         f"run {r['run_id']}: {r['rows']} verified detections written to {r['out']} as a partial label table "
         f"({labels}); left out: {r['left_out']['unsure']} unsure or tied, "
-        f"{r['left_out']['superseded']} on superseded detections"
+        f"{r['left_out']['superseded']} on superseded detections, "
+        f"{r['left_out']['outside_file']} lying wholly in a neighbouring file of a continuous recording"
     )
     if not args.quiet:
         print(

@@ -57,6 +57,34 @@ def test_verdicts_become_a_partial_label_table(judged, tmp_path):
     assert result["left_out"]["unsure"] == 2 and result["rows"] == 4
 
 
+def test_a_detection_across_a_join_gives_the_part_inside_its_file(judged, tmp_path):
+    # In a continuous recording a detection belongs to the file where its peak window
+    # starts and may run past that file's end (DEVELOPERS.md, "Continuous recordings"),
+    # but `train` refuses a label that ends more than 0.5 s past its file's end. The part
+    # inside the file is exported; a detection wholly past the end is left out, counted.
+    db, ids = judged
+    con = open_store(db, create=False)
+    (duration,) = con.execute(
+        "SELECT f.duration_s FROM detections d JOIN files f USING (file_id) WHERE d.detection_id=?", (ids[0],)
+    ).fetchone()
+    with Transaction(con):
+        con.execute(
+            "UPDATE detections SET start_s=?, end_s=? WHERE detection_id=?", (duration - 0.4, duration + 0.9, ids[0])
+        )
+        con.execute(
+            "UPDATE detections SET start_s=?, end_s=? WHERE detection_id=?", (duration + 0.3, duration + 0.8, ids[1])
+        )
+    con.close()
+    out = tmp_path / "verified.csv"
+    result = export_verified_labels(db, out)
+    with open(out, newline="") as fh:
+        rows = {int(r["detection_id"]): r for r in csv.DictReader(fh)}
+    assert float(rows[ids[0]]["start_s"]) == pytest.approx(duration - 0.4)
+    assert float(rows[ids[0]]["end_s"]) == pytest.approx(duration)
+    assert ids[1] not in rows and result["left_out"]["outside_file"] == 1
+    assert all(float(r["end_s"]) <= duration + 1e-6 for r in rows.values())
+
+
 def test_export_labels_never_replaces_the_store(judged, capsys):
     db, _ = judged
     before = db.read_bytes()
