@@ -106,6 +106,14 @@ def format_training_report(report: dict) -> str:
             if report.get("slow_decoys")
             else []
         ),
+        *(
+            [
+                "short detections confidence scaled by duration below "
+                + ", ".join(f"{v:g} s ({k})" for k, v in sorted(report["short_call_s"].items()))
+            ]
+            if report.get("short_call_s")
+            else []
+        ),
         f"cross-validation {report['cv_folds']} folds, grouped by {report['cv_grouping']}; per class: "
         "average precision, precision and recall at 0.5",
     ]

@@ -112,6 +112,11 @@ class TrainingConfig:
         factor: another call sweeping the same band more slowly. 0 turns it off.
     slow_decoy_min_excess_db : float, dB, how far above the floor a target example's
         sweep path must stand for its rate to be measured well enough to copy
+    short_call_fraction : float, 0..1, share of a class's median labelled call duration
+        below which a detection's confidence is scaled down in proportion to its
+        duration: a window sees too little of a call to tell a fragment (a transient, a
+        snatch of another animal's call) from a whole call, the detection's extent does.
+        0 turns it off.
     """
 
     kind: str = "gradient-boosting"
@@ -130,6 +135,7 @@ class TrainingConfig:
     monotone_excess: bool = True
     slow_decoy_factor: float = 0.5
     slow_decoy_min_excess_db: float = 15.0
+    short_call_fraction: float = 0.5
 
     def __post_init__(self) -> None:
         if self.class_weight == "" and self.kind in MODEL_KINDS:
@@ -199,6 +205,7 @@ _CONSTRAINTS = [
     ("monotone_excess", lambda v: isinstance(v, bool), "true or false"),
     ("slow_decoy_factor", lambda v: isinstance(v, int | float) and 0 <= v < 1, "a number in [0, 1) (0: off)"),
     ("slow_decoy_min_excess_db", lambda v: isinstance(v, int | float) and v >= 0, "a number >= 0 (dB)"),
+    ("short_call_fraction", lambda v: isinstance(v, int | float) and 0 <= v <= 1, "a number in 0..1 (0: off)"),
 ]
 
 _TABLES = {
@@ -217,6 +224,9 @@ _TABLES = {
         "min_overlap": "min_overlap",
         "slow_decoy_factor": "slow_decoy_factor",
         "slow_decoy_min_excess_db": "slow_decoy_min_excess_db",
+    },
+    "detections": {
+        "short_call_fraction": "short_call_fraction",
     },
     "validation": {
         "group_by": "group_by",

@@ -9,7 +9,7 @@ from scipy.signal import find_peaks
 
 from .labels import BACKGROUND
 
-__all__ = ["Candidate", "pick_detections", "DUPLICATE_OVERLAP"]
+__all__ = ["Candidate", "pick_detections", "short_call_factor", "DUPLICATE_OVERLAP"]
 
 # Two peaks of one class whose intervals share more than this fraction of the shorter one
 # are one call seen from two windows: the less confident is dropped (non-maximum
@@ -30,6 +30,26 @@ class Candidate:
     window: int  # index (in the file's window arrays) of the peak window
 
 
+def short_call_factor(duration_s: np.ndarray, short_call_s: float) -> np.ndarray:
+    """Factor on the confidence of detections shorter than a whole call of their class.
+
+    Parameters
+    ----------
+    duration_s : np.ndarray, s, the detections' durations
+    short_call_s : float, s, the duration below which a detection counts as a fragment
+        (a share of the class's median labelled call); 0 or less: no factor
+
+    Returns
+    -------
+    np.ndarray, ``min(1, duration_s / short_call_s)``: 1 for a detection at least
+    ``short_call_s`` long, falling in proportion to the duration below it
+    """
+    d = np.asarray(duration_s, dtype=float)
+    if short_call_s <= 0:
+        return np.ones_like(d)
+    return np.clip(d / short_call_s, 0.0, 1.0)
+
+
 def pick_detections(
     proba: np.ndarray,
     classes: list[str],
@@ -37,6 +57,7 @@ def pick_detections(
     band_hz: np.ndarray,
     floor: float,
     active: np.ndarray | None = None,
+    short_call_s: dict[str, float] | None = None,
 ) -> list[Candidate]:
     """Detections of every class from consecutive windows' probabilities.
 
@@ -50,6 +71,9 @@ def pick_detections(
     active : np.ndarray [shape=(n_windows,)] of bool, optional; windows whose trace stands
         above the noise floor (their segment and band say where a call is). Without it,
         every window counts as active.
+    short_call_s : dict of str to float, optional; s, per class, the duration below
+        which a detection's confidence is scaled down by :func:`short_call_factor`
+        (classes left out: no factor; see Notes)
 
     Returns
     -------
@@ -68,6 +92,14 @@ def pick_detections(
     view is spanned whole. Of two detections of one class whose intervals overlap by
     more than ``DUPLICATE_OVERLAP`` of the shorter (the same call seen from two peaks),
     only the more confident is kept.
+
+    A window scores what it sees; a fragment (a transient, a snatch of another animal's
+    sweep, the loud part of a call masked elsewhere) can look like a call to it. The
+    detection's extent is the first place the whole event is seen, so a detection
+    shorter than ``short_call_s`` of its class keeps only that share of its
+    probability above ``floor`` (a common-practice minimum-duration criterion, made
+    gradual so that confidences keep their order): ``floor + (p - floor) * factor``.
+    Every peak that reached the floor is still kept, at or above it.
     """
     out: list[Candidate] = []
     calls = [j for j, c in enumerate(classes) if c != BACKGROUND]
@@ -84,7 +116,10 @@ def pick_detections(
         peaks = peaks - 1
         peaks = peaks[best_call[peaks] == j]
         extent = np.array([_call_extent(i, p, segment_s, band_hz, active, floor) for i in peaks]).reshape(-1, 4)
-        for k in _suppress_duplicates(p[peaks], extent[:, :2]):
+        # Scaled above the floor, so that every peak that reached it is still stored.
+        factor = short_call_factor(extent[:, 1] - extent[:, 0], (short_call_s or {}).get(classes[j], 0.0))
+        confidence = floor + (p[peaks] - floor) * factor
+        for k in _suppress_duplicates(confidence, extent[:, :2]):
             out.append(
                 Candidate(
                     float(extent[k, 0]),
@@ -92,7 +127,7 @@ def pick_detections(
                     float(extent[k, 2]),
                     float(extent[k, 3]),
                     classes[j],
-                    float(p[peaks[k]]),
+                    float(confidence[k]),
                     int(peaks[k]),
                 )
             )

@@ -273,6 +273,9 @@ class CallModel:
     summary : dict, training-set summary and cross-validated metrics
     cascade : Cascade or None, the first stage that rejects background windows before
         the full descriptors and the estimator (None: every window is described)
+    short_call_s : dict of str to float, s, per class, the duration below which a
+        detection's confidence is scaled down by its duration (see ``pick_detections``;
+        empty in models made before it: no scaling)
     content_sha256 : str, hash of the estimator and everything above
     """
 
@@ -284,9 +287,11 @@ class CallModel:
         target: str | None,
         summary: dict[str, Any],
         cascade: Any = None,
+        short_call_s: dict[str, float] | None = None,
     ) -> None:
         self.estimator = estimator
         self.cascade = cascade
+        self.short_call_s = {str(k): float(v) for k, v in (short_call_s or {}).items()}
         self.settings = settings
         self.descriptor_names = list(descriptor_names)
         self.classes = [str(c) for c in estimator.classes_]
@@ -296,15 +301,22 @@ class CallModel:
 
     def metadata(self) -> dict[str, Any]:
         """Everything but the estimator, as plain JSON values."""
-        return {
-            "format": MODEL_FORMAT,
-            "descriptor_version": DESCRIPTOR_VERSION,
-            "settings": self.settings.to_dict(),
-            "descriptor_names": self.descriptor_names,
-            "classes": self.classes,
-            "target": self.target,
-            "summary": self.summary,
-        } | ({"cascade": self.cascade.summary()} if self.cascade is not None else {})
+        return (
+            {
+                "format": MODEL_FORMAT,
+                "descriptor_version": DESCRIPTOR_VERSION,
+                "settings": self.settings.to_dict(),
+                "descriptor_names": self.descriptor_names,
+                "classes": self.classes,
+                "target": self.target,
+                "summary": self.summary,
+            }
+            | ({"cascade": self.cascade.summary()} if self.cascade is not None else {})
+            | (
+                # Left out when empty, so that a model without it keeps its content hash.
+                {"short_call_s": self.short_call_s} if self.short_call_s else {}
+            )
+        )
 
     def check_fits(self, sample_rate_hz: float, where: str) -> None:
         """Refuse data this model cannot describe (band above Nyquist)."""
@@ -398,6 +410,7 @@ def load_model(path: str | Path) -> CallModel:
         meta["target"],
         meta["summary"],
         _cascade(cascade_estimator, meta.get("cascade")),
+        meta.get("short_call_s"),
     )
     model.content_sha256 = payload["content_sha256"]
     return model

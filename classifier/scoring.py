@@ -282,7 +282,13 @@ def _score_file(
         first_sample = np.round(start_s * fs).astype(np.int64)
         owned = (first_sample >= offset) & (first_sample < offset + frames)
         cands = pick_detections(
-            proba, model.classes, np.concatenate(segment), np.column_stack([lo, hi]), threshold, active
+            proba,
+            model.classes,
+            np.concatenate(segment),
+            np.column_stack([lo, hi]),
+            threshold,
+            active,
+            model.short_call_s,
         )
         cands = [c for c in cands if owned[c.window]]
         levels = measure_levels(reader, chain, cands, np.concatenate(noise_psd), frequency_hz)

@@ -571,6 +571,23 @@ def labels_for_settings(notes: list[Annotation], target: str | None = None) -> l
     return drawn or chosen
 
 
+def short_call_durations(notes: list[Annotation], target: str | None, config: TrainingConfig) -> dict[str, float]:
+    """Per class the model detects, the duration (s) below which a detection is a fragment.
+
+    ``config.short_call_fraction`` of the median duration of the class's labelled calls
+    (see :func:`callsieve.classifier.detections.short_call_factor`); empty when the
+    fraction is 0.
+    """
+    if config.short_call_fraction <= 0:
+        return {}
+    out: dict[str, float] = {}
+    for label in sorted({a.label for a in notes} if target is None else {target}):
+        durations = [a.duration_s for a in notes if a.label == label]
+        if durations:
+            out[label] = round(float(config.short_call_fraction * np.median(durations)), 4)
+    return out
+
+
 def calibration_weight(examples: ExampleSet) -> np.ndarray:
     """Weights of the probability calibration: the examples' own, but none for verified ones.
 
@@ -672,7 +689,9 @@ def train_model(
         "config": config.to_dict(),
         "validation": validation,
     } | ({"cascade": cascade.summary()} if cascade is not None else {})
-    model = CallModel(estimator, settings, examples.names, target, summary, cascade)
+    model = CallModel(
+        estimator, settings, examples.names, target, summary, cascade, short_call_durations(all_notes, target, config)
+    )
     seconds = {"describe": t1 - t0, "fit_and_cross_validate": t2 - t1, "metrics": t3 - t2}
     return TrainingResult(model, examples, validation, replace(config), seconds, threads)
 
@@ -855,6 +874,7 @@ def train(
         "classes": result.model.classes,
         "examples": result.model.summary["examples"],
         "slow_decoys": result.model.summary.get("slow_decoys", 0),
+        "short_call_s": result.model.short_call_s,
         "examples_per_set": result.model.summary["examples_per_set"],
         "cv": result.validation["overall"]["metrics"],
         "cv_folds": result.validation["n_folds"],

@@ -172,3 +172,17 @@ def isolated_call_level_db(p, fs, call, busy, duration_s):
     if len(pieces) < 3:
         return None
     return float(10 * np.log10(10 ** (total / 10) - np.median(pieces)))
+
+
+def write_sweeps_file(path, shapes, level_db, fs=2000, noise_db=65.0, seed=5):
+    """Sweeps at ``level_db`` dB re 1 µPa, one every 10 s from 5 s, in white noise of PSD
+    ``noise_db`` dB re 1 µPa²/Hz; returns the start times (s)."""
+    chain = RecordingChain.flat(2.5, -170.0, 40.0)
+    rng = np.random.default_rng(seed)
+    starts = 5.0 + 10.0 * np.arange(len(shapes))
+    t = np.arange(int(fs * (starts[-1] + 6.0))) / fs
+    p = rng.normal(0.0, np.sqrt(10 ** (noise_db / 10) * fs / 2), t.size)
+    for shape, s in zip(shapes, starts, strict=True):
+        p += call_waveform(shape, t - s, np.sqrt(2) * 10 ** (level_db / 20))
+    sf.write(path, samples_from_pressure(p, fs, chain), fs, subtype="PCM_16")
+    return chain, starts

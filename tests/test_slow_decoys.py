@@ -6,7 +6,6 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
-import soundfile as sf
 from callsieve.classifier.config import TrainingConfig, load_training_config
 from callsieve.classifier.deployment import load_deployment
 from callsieve.classifier.labels import BACKGROUND, read_label_table
@@ -18,10 +17,10 @@ from callsieve.classifier.training import (
     slow_decoys,
     train_model,
 )
-from callsieve.features.calibration import RecordingChain, samples_from_pressure
 from callsieve.features.descriptors import DescriptorSettings, descriptor_names, sweep_path_rate_step_hz_per_s
 from callsieve.features.pipeline import describe_file
-from callsieve.features.synthesis import CallShape, call_waveform
+from callsieve.features.synthesis import CallShape
+from conftest import write_sweeps_file
 
 SETTINGS = DescriptorSettings(
     low_hz=60.0, high_hz=200.0, resolution_hz=5.0, frame_hop_s=0.05, window_s=1.7, window_hop_s=0.4
@@ -125,20 +124,6 @@ def test_decoys_leave_calibration_possible_when_every_real_example_is_verified()
         np.testing.assert_array_equal(calibration_weight(examples), [1.0, 1.0, 1.0, 0.0])
 
 
-def _sweeps_file(path, shapes, level_db, fs=2000, noise_db=65.0, seed=5):
-    """Sweeps at ``level_db`` dB re 1 µPa, one every 10 s from 5 s, in white noise of PSD
-    ``noise_db`` dB re 1 µPa²/Hz; returns the start times (s)."""
-    chain = RecordingChain.flat(2.5, -170.0, 40.0)
-    rng = np.random.default_rng(seed)
-    starts = 5.0 + 10.0 * np.arange(len(shapes))
-    t = np.arange(int(fs * (starts[-1] + 6.0))) / fs
-    p = rng.normal(0.0, np.sqrt(10 ** (noise_db / 10) * fs / 2), t.size)
-    for shape, s in zip(shapes, starts, strict=True):
-        p += call_waveform(shape, t - s, np.sqrt(2) * 10 ** (level_db / 20))
-    sf.write(path, samples_from_pressure(p, fs, chain), fs, subtype="PCM_16")
-    return chain, starts
-
-
 def test_a_model_with_decoys_scores_a_slower_sweep_of_the_same_band_lower(labelled, tmp_path):
     # The fixture's target sweeps up 80 -> 160 Hz in 0.9-1.3 s (60-90 Hz/s); its only
     # other label sweeps down. A slower upsweep over the same start (80 -> 115 Hz in
@@ -153,7 +138,7 @@ def test_a_model_with_decoys_scores_a_slower_sweep_of_the_same_band_lower(labell
     config = replace(load_training_config(config_path), descriptors=descriptors)
     slow = [CallShape("sweep", 80.0, 115.0, 1.3)] * 6
     fast = [CallShape("sweep", 80.0, 160.0, 1.1)] * 6
-    chain, starts = _sweeps_file(tmp_path / "test.wav", slow + fast, 113.0)
+    chain, starts = write_sweeps_file(tmp_path / "test.wav", slow + fast, 113.0)
     tables = list(describe_file(tmp_path / "test.wav", chain, SETTINGS))
     values = np.concatenate([t.values for t in tables])
     start = np.concatenate([t.start_s for t in tables])
