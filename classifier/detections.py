@@ -98,8 +98,10 @@ def pick_detections(
     detection's extent is the first place the whole event is seen, so a detection
     shorter than ``short_call_s`` of its class keeps only that share of its
     probability above ``floor`` (a common-practice minimum-duration criterion, made
-    gradual so that confidences keep their order): ``floor + (p - floor) * factor``.
-    Every peak that reached the floor is still kept, at or above it.
+    gradual so that detections of one length keep their order):
+    ``floor + (p - floor) * factor``. Every peak that reached the floor is still kept, at
+    or above it, and duplicates are resolved on the scaled confidence, so a whole call
+    wins over a louder fragment of it.
     """
     out: list[Candidate] = []
     calls = [j for j, c in enumerate(classes) if c != BACKGROUND]
@@ -118,7 +120,8 @@ def pick_detections(
         extent = np.array([_call_extent(i, p, segment_s, band_hz, active, floor) for i in peaks]).reshape(-1, 4)
         # Scaled above the floor, so that every peak that reached it is still stored.
         factor = short_call_factor(extent[:, 1] - extent[:, 0], (short_call_s or {}).get(classes[j], 0.0))
-        confidence = floor + (p[peaks] - floor) * factor
+        # Unscaled peaks store p itself (floor + (p - floor) * 1 can differ by an ulp).
+        confidence = np.where(factor < 1.0, floor + (p[peaks] - floor) * factor, p[peaks])
         for k in _suppress_duplicates(confidence, extent[:, :2]):
             out.append(
                 Candidate(

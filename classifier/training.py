@@ -575,14 +575,18 @@ def short_call_durations(notes: list[Annotation], target: str | None, config: Tr
     """Per class the model detects, the duration (s) below which a detection is a fragment.
 
     ``config.short_call_fraction`` of the median duration of the class's labelled calls
-    (see :func:`callsieve.classifier.detections.short_call_factor`); empty when the
-    fraction is 0.
+    (the analysts' rows where the class has any, else its verified rows; see
+    :func:`callsieve.classifier.detections.short_call_factor`); empty when the fraction
+    is 0. Background rows (verified "no") get none.
     """
     if config.short_call_fraction <= 0:
         return {}
     out: dict[str, float] = {}
-    for label in sorted({a.label for a in notes} if target is None else {target}):
-        durations = [a.duration_s for a in notes if a.label == label]
+    for label in sorted({a.label for a in notes} - {BACKGROUND} if target is None else {target}):
+        rows = [a for a in notes if a.label == label]
+        # Verified rows carry detections' boxes, often the short ones this scales: where
+        # a class has analysts' rows, only theirs count (as in labels_for_settings).
+        durations = [a.duration_s for a in rows if not a.partial] or [a.duration_s for a in rows]
         if durations:
             out[label] = round(float(config.short_call_fraction * np.median(durations)), 4)
     return out
