@@ -118,9 +118,9 @@ def pick_detections(
         peaks = peaks - 1
         peaks = peaks[best_call[peaks] == j]
         extent = np.array([_call_extent(i, p, segment_s, band_hz, active, floor) for i in peaks]).reshape(-1, 4)
-        # Scaled above the floor, so that every peak that reached it is still stored.
+        # Scaled above the floor, so that every peak that reached it is still stored; an
+        # unscaled peak stores p itself (floor + (p - floor) * 1 can differ by an ulp).
         factor = short_call_factor(extent[:, 1] - extent[:, 0], (short_call_s or {}).get(classes[j], 0.0))
-        # Unscaled peaks store p itself (floor + (p - floor) * 1 can differ by an ulp).
         confidence = np.where(factor < 1.0, floor + (p[peaks] - floor) * factor, p[peaks])
         for k in _suppress_duplicates(confidence, extent[:, :2]):
             out.append(

@@ -583,10 +583,9 @@ def short_call_durations(notes: list[Annotation], target: str | None, config: Tr
         return {}
     out: dict[str, float] = {}
     for label in sorted({a.label for a in notes} - {BACKGROUND} if target is None else {target}):
-        rows = [a for a in notes if a.label == label]
-        # Verified rows carry detections' boxes, often the short ones this scales: where
-        # a class has analysts' rows, only theirs count (as in labels_for_settings).
-        durations = [a.duration_s for a in rows if not a.partial] or [a.duration_s for a in rows]
+        # Verified rows carry detections' boxes, often the short ones this scales: the
+        # analysts' rows of the class where it has any, as for the settings.
+        durations = [a.duration_s for a in labels_for_settings(notes, label)]
         if durations:
             out[label] = round(float(config.short_call_fraction * np.median(durations)), 4)
     return out

@@ -152,7 +152,8 @@ def test_the_setting_is_saved_with_the_model_and_old_models_load_without_it(labe
     train([manifest], [labels], path, config_path=config_path, track=False)
     model = load_model(path)
     assert set(model.short_call_s) == {"up", "down"}
-    # A model without it (made before it existed) keeps its content hash and scores unscaled.
+    # A model without it (made before it existed): the key is left out of the metadata the
+    # content hash covers, so its hash is what it was, and it loads with no scaling.
     model.short_call_s = {}
     assert "short_call_s" not in model.metadata()
     save_model(model, tmp_path / "old.skops")
