@@ -35,7 +35,13 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     Fitting runs a grouped cross-validation once: its out-of-fold scores fit one
     calibrator per class (isotonic or sigmoid), and also give honest out-of-fold
     probabilities (each fold calibrated by the other folds' calibrators) for metrics.
-    The final estimator is then fitted on all rows. ``folds + 1`` fits in all.
+    The final estimator is then fitted on all rows. ``folds + 1`` fits in all. With
+    ``average_folds`` the fold estimators are kept, and a window's raw score is the
+    mean of theirs and the final estimator's before calibration: models fitted on
+    overlapping shares of the rows disagree where one of them learned a quirk of its
+    rows, and their mean ranks more steadily than any one of them, at no extra fit. The
+    calibrators (and ``oof_proba_``) come from single fold estimators' scores; the mean
+    of five is a little less spread, which the calibration does not see.
 
     Parameters
     ----------
@@ -48,6 +54,8 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     columns : list of int, optional; the columns of X the estimator learns from (all
         when None), so a model can be handed whole descriptor rows and still leave some
         out (absolute levels)
+    average_folds : bool, score with the mean raw score of the fold estimators and the
+        final one (kept in ``fold_estimators_``), else with the final one alone
 
     Attributes
     ----------
@@ -55,6 +63,8 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
     estimator_ : the fitted scikit-learn estimator (all rows)
     calibrators_ : list, one fitted calibrator per class (one in total for two classes)
     fold_ : np.ndarray [shape=(n,)], the fold each training row was held out in
+    fold_estimators_ : list, the estimators fitted on each fold's other rows (empty
+        without ``average_folds``, and in models saved before it)
     oof_proba_ : np.ndarray [shape=(n, n_classes)], out-of-fold calibrated probabilities
     n_features_in_ : int
     """
@@ -68,6 +78,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         folds: int = 4,
         random_state: int = 0,
         columns: list[int] | None = None,
+        average_folds: bool = False,
     ) -> None:
         self.kind = kind
         self.params = params
@@ -76,6 +87,7 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         self.folds = folds
         self.random_state = random_state
         self.columns = columns
+        self.average_folds = average_folds
 
     def _base(self) -> BaseEstimator:
         params = dict(self.params or {})
@@ -172,10 +184,13 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         splits = self._splits(X, y, groups)
         raw = np.zeros((y.size, self.classes_.size))
         self.fold_ = np.zeros(y.size, dtype=int)
+        self.fold_estimators_ = []
         for k, (train, test) in enumerate(splits):
             model = clone(self._base()).fit(X[train], y[train])
             raw[test] = _aligned_proba(model, X[test], self.classes_)
             self.fold_[test] = k
+            if self.average_folds:
+                self.fold_estimators_.append(model)
         self.calibrators_ = self._fit_calibrators(raw, y, weight)
         # Out-of-fold probabilities: each fold calibrated without its own rows.
         self.oof_proba_ = np.zeros_like(raw)
@@ -184,17 +199,62 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
             cal = self._fit_calibrators(raw[others], y[others], weight[others])
             self.oof_proba_[test] = self._calibrate(raw[test], cal)
         self.estimator_ = clone(self._base()).fit(X, y)
-        if "n_jobs" in self.estimator_.get_params():
-            # Scoring runs in parallel over files; a forest's own threads would oversubscribe.
-            self.estimator_.set_params(n_jobs=1)
+        for model in (self.estimator_, *self.fold_estimators_):
+            if "n_jobs" in model.get_params():
+                # Scoring runs in parallel over files; a forest's own threads would oversubscribe.
+                model.set_params(n_jobs=1)
         self.n_features_in_ = X.shape[1]
         return self
 
     def predict_proba(self, X: np.ndarray) -> np.ndarray:
-        """Calibrated class probabilities [shape=(n, n_classes)], columns as ``classes_``."""
+        """Calibrated class probabilities [shape=(n, n_classes)], columns as ``classes_``.
+
+        The mean raw score of the fold estimators and the final one where they were kept
+        (``average_folds``), else the final estimator's; then the calibrators. Each class
+        is averaged over the estimators whose fold held it.
+        """
         check_is_fitted(self, "estimator_")
-        raw = _aligned_proba(self.estimator_, self._inputs(X), self.classes_)
-        return self._calibrate(raw, self.calibrators_)
+        X = self._inputs(X)
+        return self._calibrate(self._mean_raw(X, _aligned_proba(self.estimator_, X, self.classes_)), self.calibrators_)
+
+    def predict_proba_screened(self, X: np.ndarray, columns: list[int], at_least: float) -> np.ndarray:
+        """:meth:`predict_proba` where the final estimator gives one of ``columns`` at
+        least ``at_least`` (a probability), :meth:`predict_proba_final` elsewhere.
+
+        The fold estimators cost as much as the final one each; scoring asks them only
+        about windows near a call. An approximation: their mean can lift a window the
+        final estimator put lower (see ``scoring._predict``).
+        """
+        check_is_fitted(self, "estimator_")
+        X = self._inputs(X)
+        raw = _aligned_proba(self.estimator_, X, self.classes_)
+        proba = self._calibrate(raw, self.calibrators_)
+        near = proba[:, columns].max(axis=1) >= at_least
+        if self._averaged() and np.any(near):
+            proba[near] = self._calibrate(self._mean_raw(X[near], raw[near]), self.calibrators_)
+        return proba
+
+    def _averaged(self) -> bool:
+        return bool(getattr(self, "average_folds", False) and getattr(self, "fold_estimators_", None))
+
+    def _mean_raw(self, X: np.ndarray, final_raw: np.ndarray) -> np.ndarray:
+        """Mean raw score of the final estimator (given) and, with ``average_folds``, the
+        fold estimators; a class is averaged over the estimators that saw it."""
+        if not self._averaged():
+            return final_raw
+        total, count = final_raw.copy(), np.ones(self.classes_.size)
+        for model in self.fold_estimators_:
+            total += _aligned_proba(model, X, self.classes_)
+            count[np.searchsorted(self.classes_, model.classes_)] += 1
+        return total / count
+
+    def predict_proba_final(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated probabilities from the final estimator alone, a cheaper first look.
+
+        Equal to :meth:`predict_proba` without fold estimators.
+        """
+        check_is_fitted(self, "estimator_")
+        return self._calibrate(_aligned_proba(self.estimator_, self._inputs(X), self.classes_), self.calibrators_)
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         """The most probable class of each row."""
@@ -387,6 +447,8 @@ def load_model(path: str | Path) -> CallModel:
                     f"{path}: refused: the model holds types callsieve does not trust ({', '.join(untrusted[:5])})"
                 )
         estimator = sio.loads(est_bytes, trusted=TRUSTED_TYPES)
+        if isinstance(estimator, CallClassifier) and not hasattr(estimator, "average_folds"):
+            estimator.average_folds = False  # saved before the parameter existed: the final estimator alone
         cascade_estimator = sio.loads(cascade_bytes, trusted=TRUSTED_TYPES) if cascade_bytes else None
         meta = json.loads(payload["metadata"])
     except InputError:

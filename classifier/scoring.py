@@ -273,7 +273,7 @@ def _score_file(
             return FileResult(name, "done", None, 0, [], time.perf_counter() - t0, 0, _soundscape(spectra))
         # One prediction per file: a boosted model's cost is mostly per call and per tree.
         v = np.concatenate(values)
-        proba = _predict(model, v, background if gate else None, i_act, i_snr, np.concatenate(passed))
+        proba = _predict(model, v, background if gate else None, i_act, i_snr, np.concatenate(passed), threshold)
         active = v[:, i_act] > 0
         lo = np.where(active, np.maximum(v[:, i_lo] - settings.resolution_hz, settings.low_hz), settings.low_hz)
         hi = np.where(active, np.minimum(v[:, i_hi] + settings.resolution_hz, settings.high_hz), settings.high_hz)
@@ -331,12 +331,18 @@ def _predict(
     i_act: int,
     i_snr: int,
     passed: np.ndarray | None = None,
+    threshold: float = 0.0,
 ) -> np.ndarray:
     """Calibrated probabilities of every window; gated windows are background unasked.
 
     With ``background`` (its column) given, windows with no trace above the floor and no
     in-band excess (see GATE_SNR_DB) skip the model. Windows the cascade rejected
-    (``passed`` False, NaN descriptors) are background too.
+    (``passed`` False, NaN descriptors) are background too. A model that averages its
+    fold estimators (``CallClassifier.average_folds``) asks them only about windows its
+    final estimator gives a call class at least half the storage floor ``threshold``;
+    the others keep the final estimator's probabilities. That is an approximation: the
+    mean could lift a few of them over the floor (on the hard benchmark, asking every
+    window gave a mean AP of 0.883 against 0.882, at 25 % more scoring time).
     """
     proba = np.zeros((values.shape[0], len(model.classes)))
     keep = np.ones(values.shape[0], dtype=bool) if passed is None else passed.copy()
@@ -345,9 +351,15 @@ def _predict(
     if background is not None or not keep.all():
         proba[:, model.classes.index(BACKGROUND) if background is None else background] = 1.0
     rows = np.flatnonzero(keep)
+    est = model.estimator
+    screened = hasattr(est, "predict_proba_screened")
+    calls = [j for j, c in enumerate(model.classes) if c != BACKGROUND]
     for a in range(0, rows.size, _PREDICT_ROWS):
         part = rows[a : a + _PREDICT_ROWS]
-        proba[part] = model.estimator.predict_proba(values[part])
+        if screened:
+            proba[part] = est.predict_proba_screened(values[part], calls, 0.5 * threshold)
+        else:
+            proba[part] = est.predict_proba(values[part])
     return proba
 
 

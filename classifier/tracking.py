@@ -7,6 +7,7 @@ URI works the same way.
 
 from __future__ import annotations
 
+import copy
 import json
 import tempfile
 from pathlib import Path
@@ -71,8 +72,12 @@ def descriptor_importances(result: Any, max_rows: int = 3000) -> list[tuple[str,
     ex = result.examples
     rng = np.random.default_rng(0)
     idx = rng.choice(ex.y.size, size=min(max_rows, ex.y.size), replace=False)
+    # The final estimator's importances: the fold estimators learned from the same
+    # descriptors, and asking all five would multiply the cost of training's summary.
+    final = copy.copy(result.model.estimator)
+    final.fold_estimators_ = []
     imp = permutation_importance(
-        result.model.estimator,
+        final,
         ex.X[idx],
         ex.y[idx],
         scoring="neg_log_loss",

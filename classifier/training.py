@@ -483,6 +483,7 @@ def _estimator(config: TrainingConfig, names: list[str] | None = None, target: s
         folds=config.folds,
         random_state=config.seed,
         columns=columns,
+        average_folds=bool(config.average_folds and target and config.kind == "gradient-boosting"),
     )
 
 
