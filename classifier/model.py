@@ -213,9 +213,8 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         (``average_folds``), else the final estimator's; then the calibrators. Each class
         is averaged over the estimators whose fold held it.
         """
-        check_is_fitted(self, "estimator_")
         X = self._inputs(X)
-        return self._calibrate(self._mean_raw(X, _aligned_proba(self.estimator_, X, self.classes_)), self.calibrators_)
+        return self._calibrate(self._mean_raw(X, self._final_raw(X)), self.calibrators_)
 
     def predict_proba_screened(self, X: np.ndarray, columns: list[int], at_least: float) -> np.ndarray:
         """:meth:`predict_proba` where the final estimator gives one of ``columns`` at
@@ -225,9 +224,8 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
         about windows near a call. An approximation: their mean can lift a window the
         final estimator put lower (see ``scoring._predict``).
         """
-        check_is_fitted(self, "estimator_")
         X = self._inputs(X)
-        raw = _aligned_proba(self.estimator_, X, self.classes_)
+        raw = self._final_raw(X)
         proba = self._calibrate(raw, self.calibrators_)
         near = proba[:, columns].max(axis=1) >= at_least
         if self._averaged() and np.any(near):
@@ -253,8 +251,11 @@ class CallClassifier(ClassifierMixin, BaseEstimator):
 
         Equal to :meth:`predict_proba` without fold estimators.
         """
+        return self._calibrate(self._final_raw(self._inputs(X)), self.calibrators_)
+
+    def _final_raw(self, X: np.ndarray) -> np.ndarray:
         check_is_fitted(self, "estimator_")
-        return self._calibrate(_aligned_proba(self.estimator_, self._inputs(X), self.classes_), self.calibrators_)
+        return _aligned_proba(self.estimator_, X, self.classes_)
 
     def predict(self, X: np.ndarray) -> np.ndarray:
         """The most probable class of each row."""

@@ -351,15 +351,10 @@ def _predict(
     if background is not None or not keep.all():
         proba[:, model.classes.index(BACKGROUND) if background is None else background] = 1.0
     rows = np.flatnonzero(keep)
-    est = model.estimator
-    screened = hasattr(est, "predict_proba_screened")
     calls = [j for j, c in enumerate(model.classes) if c != BACKGROUND]
     for a in range(0, rows.size, _PREDICT_ROWS):
         part = rows[a : a + _PREDICT_ROWS]
-        if screened:
-            proba[part] = est.predict_proba_screened(values[part], calls, 0.5 * threshold)
-        else:
-            proba[part] = est.predict_proba(values[part])
+        proba[part] = model.estimator.predict_proba_screened(values[part], calls, 0.5 * threshold)
     return proba
 
 

@@ -121,12 +121,15 @@ def test_the_fold_estimators_travel_with_the_model_file_and_old_files_score_as_b
     again = load_model(path)
     np.testing.assert_array_equal(again.estimator.predict_proba(X), est.predict_proba(X))
     # A file saved before fold averaging holds neither the parameter nor the fold
-    # estimators: it loads, reports the parameter off, and scores with its final estimator.
+    # estimators: it loads, reports the parameter off, and scores with its final estimator
+    # (as computed here before the file was written).
+    final_only = est.predict_proba_final(X)
     del est.average_folds
     del est.fold_estimators_
     save_model(model, tmp_path / "old.skops")
     old = load_model(tmp_path / "old.skops").estimator
     assert old.get_params()["average_folds"] is False
+    np.testing.assert_array_equal(old.predict_proba(X), final_only)
     np.testing.assert_array_equal(old.predict_proba(X), old.predict_proba_final(X))
 
 
