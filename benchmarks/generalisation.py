@@ -18,7 +18,10 @@ numbers do not depend on thread scheduling), timed by wall clock. It prints, per
 as mean / min / max: the target's average precision, its recall at precision 0.9, the
 floor-excess baseline's average precision, and the time of training and of scoring; then
 the demo-style survey figures (operating threshold, precision and recall there, hour
-presence, and how many calls of the in-band confusers the model took for the target).
+presence, and how many calls of the in-band confusers the model took for the target);
+then where the AP goes: how many target calls got a detection at any confidence (their
+share of all calls bounds the AP), and the AP with the false detections on each in-band
+confuser's calls taken out (`ap_losses`).
 `--json OUT` writes every figure. A seed takes 1-1.5 minutes on 2 cores (scenario 15 s,
 training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine).
 """
@@ -40,6 +43,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
+from callsieve.classifier.scenario import CONFUSER_LABELS
 
 ONE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 CLI = [sys.executable, "-m", "callsieve.classifier.cli"]
@@ -64,6 +68,14 @@ SURVEY = [
     ("hour_presence_recall", "hours R", "{:.2f}"),
     ("confusers_taken_as_target", "vesk->target", "{:.0f}"),
     ("confuser_calls", "vesk calls", "{:.0f}"),
+]
+
+
+LOSSES = [
+    ("target_calls", "calls", "{:.0f}"),
+    ("target_calls_found", "found", "{:.0f}"),
+    ("average_precision", "AP", "{:.3f}"),
+    *((f"average_precision_without_{c}", f"AP without {c}", "{:.3f}") for c in CONFUSER_LABELS),
 ]
 
 
@@ -120,8 +132,6 @@ def run_seed(
     A scenario already written in ``folder`` by an earlier run (same seed and hours) is
     used again, so that trials of training settings compare on the same recordings.
     """
-    from callsieve.classifier.scenario import CONFUSER_LABELS
-
     t_seed = time.perf_counter()
     summary, scenario_s = hard_scenario(folder, seed, hours)
     target = summary["target_label"]
@@ -181,6 +191,7 @@ def run_seed(
     confusion = metrics.get("confusion") or {}
     taken, confuser_calls = _confusers_taken(confusion, target, CONFUSER_LABELS)
     audible_ap, n_faint = ap_without_faint_calls(out, summary["calls_table"], target, FAINT_SNR_DB)
+    losses = ap_losses(out, summary["calls_table"], target, CONFUSER_LABELS)
     test_name = Path(summary["survey_manifest"]).parent.name
     train_name = Path(summary["training_manifest"]).parent.name
     return {
@@ -208,6 +219,8 @@ def run_seed(
         "confuser_calls": confuser_calls
         if confuser_calls is not None
         else sum(summary["calls"][test_name][c] for c in CONFUSER_LABELS),
+        "target_calls_found": losses["calls_found"],
+        **{f"average_precision_{k}": v for k, v in losses.items() if k.startswith("without_")},
         "test_target_snr_db": summary["survey_target_snr_db"],
         "scenario_s": round(scenario_s, 1),
         "training_s": round(training_s, 1),
@@ -258,6 +271,49 @@ def ap_without_faint_calls(evaluation: Path, calls_table: str, label: str, below
     counted = len(truth) - len(faint)
     ap = average_precision(precision_recall(conf, hit, counted)) if counted else float("nan")
     return ap, len(faint)
+
+
+def ap_losses(evaluation: Path, calls_table: str, label: str, others: tuple[str, ...]) -> dict:
+    """Where the AP of ``label`` goes: calls never detected, and false detections by kind.
+
+    From ``evaluate``'s ``matches.csv`` and the scenario's call table (``calls_table``):
+    the calls of ``label`` matched at any confidence (the AP cannot exceed their share of
+    all calls), and for each label of ``others`` the AP with the false detections that
+    overlap a call of it taken out of the ranked list (a false detection overlapping calls
+    of several labels goes to the one of highest SNR). AP by the project's own rule
+    (``callsieve.classifier.evaluation``), recall over every call.
+    """
+    import csv
+
+    from callsieve.classifier.evaluation import average_precision, precision_recall
+
+    metrics = json.loads((evaluation / "metrics.json").read_text())
+    n_calls = metrics["classes"][label]["truth_calls"]
+    with open(calls_table, newline="") as fh:
+        by_file: dict[str, list[tuple[float, float, float, str]]] = {}
+        for r in csv.DictReader(fh):
+            if r["deployment"] == metrics["deployment"]:
+                by_file.setdefault(r["file"], []).append(
+                    (float(r["start_s"]), float(r["end_s"]), float(r["snr_db"]), r["label"])
+                )
+    with open(evaluation / "matches.csv", newline="") as fh:
+        rows = [r for r in csv.DictReader(fh) if r["label"] == label]
+    hit = np.array([r["truth_row"] != "" for r in rows], dtype=bool)
+    conf = np.array([float(r["confidence"]) for r in rows], dtype=float)
+    kind = []
+    for r, h in zip(rows, hit, strict=True):
+        s, e = float(r["start_s"]), float(r["end_s"])
+        over = [(snr, lab) for a, b, snr, lab in by_file.get(r["file"], []) if a < e and b > s]
+        kind.append("" if h else (max(over)[1] if over else "(no call)"))
+    kind = np.array(kind, dtype=object)
+
+    def ap(keep: np.ndarray) -> float:
+        return average_precision(precision_recall(conf[keep], hit[keep], n_calls))
+
+    out = {"calls_found": len({r["truth_row"] for r in rows if r["truth_row"]}), "average_precision": ap(kind == kind)}
+    for other in others:
+        out[f"without_{other}"] = ap(kind != other)
+    return out
 
 
 def run_demo_site(folder: Path, jobs: int, config: Path | None = None, threshold: float | None = None) -> dict:
@@ -391,6 +447,13 @@ def main() -> None:
         print("Survey figures at the operating threshold (precision 0.9, else the F1-optimal one)")
         print()
         print(_table(results, SURVEY))
+        print()
+        print(
+            "Where the AP goes: calls detected at any confidence (found / calls bounds the AP), and the AP "
+            "with the false detections on each in-band confuser's calls taken out"
+        )
+        print()
+        print(_table(results, LOSSES))
     demo = None
     if args.demo:
         with seed_folder(args.folder, "demo", "callsieve-demo-") as folder:
@@ -403,7 +466,8 @@ def main() -> None:
             f"scoring {demo['scoring_s']:.0f} s"
         )
     if args.json:
-        keys = [k for k, _, _ in MAIN + SURVEY] + ["scenario_s", "evaluation_s", "threshold_for_precision_0.9"]
+        keys = [k for k, _, _ in MAIN + SURVEY + LOSSES[1:]]
+        keys += ["scenario_s", "evaluation_s", "threshold_for_precision_0.9"]
         settings = {"hours": args.hours, "jobs": args.jobs, "demo": demo, "threshold": args.threshold}
         settings["config"] = str(args.config) if args.config else None
         write_record(args.json, "generalisation", settings, results, keys)
