@@ -276,6 +276,8 @@ def ap_without_faint_calls(evaluation: Path, calls_table: str, label: str, below
 def ap_losses(evaluation: Path, calls_table: str, label: str, others: tuple[str, ...]) -> dict:
     """Where the AP of ``label`` goes: calls never detected, and false detections by kind.
 
+    Returns ``calls_found`` and, per label of ``others``, ``without_<label>`` (an AP).
+
     From ``evaluate``'s ``matches.csv`` and the scenario's call table (``calls_table``):
     the calls of ``label`` matched at any confidence (the AP cannot exceed their share of
     all calls), and for each label of ``others`` the AP with the false detections that
@@ -310,7 +312,7 @@ def ap_losses(evaluation: Path, calls_table: str, label: str, others: tuple[str,
     def ap(keep: np.ndarray) -> float:
         return average_precision(precision_recall(conf[keep], hit[keep], n_calls))
 
-    out = {"calls_found": len({r["truth_row"] for r in rows if r["truth_row"]}), "average_precision": ap(kind == kind)}
+    out = {"calls_found": len({r["truth_row"] for r in rows if r["truth_row"]})}
     for other in others:
         out[f"without_{other}"] = ap(kind != other)
     return out
