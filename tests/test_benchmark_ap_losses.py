@@ -69,7 +69,7 @@ def test_the_ap_without_a_confuser_is_scikit_learns_over_the_rest(tmp_path, gene
 
     hit = np.array([d[4] != "" for d in detections])
     conf = np.array([d[3] for d in detections])
-    kind = np.array(["", "yip", "", "yip", "none", "yip", ""])
+    kind = np.array(["", "yip", "", "yip", "(no call)", "yip", ""])
     assert got["calls_found"] == 3
     for other in ("rise", "yip"):
         keep = kind != other
