@@ -341,7 +341,7 @@ def collect_examples(
 #: Key of ``ExampleSet.counts`` for the slow decoys of a set (background examples made
 #: from its target examples, see :func:`slow_decoys`), apart from the labels' counts.
 DECOY_COUNT = "(slow decoys)"
-SWEEP_RATES = ("trace_sweep_rate_hz_per_s", "sweep_path_rate_hz_per_s")
+SWEEP_RATES = ("trace_sweep_rate_hz_per_s", "sweep_path_rate_hz_per_s", "sweep_path_long_rate_hz_per_s")
 
 
 def slow_decoys(
@@ -356,7 +356,7 @@ def slow_decoys(
     itself. Each well-measured target example (best sweep path at least
     ``slow_decoy_min_excess_db`` above the floor) is copied with its sweep rates
     multiplied by ``slow_decoy_factor``, every other descriptor unchanged. Only where that
-    moves the faster of the two rates by at least one step of the paths' rates: a decoy
+    moves the fastest of these rates by at least one step of the short paths' rates: a decoy
     the descriptors could not tell from its call (a flat tone, a slow drift) would teach
     the trees that the call itself is background.
 

@@ -28,7 +28,7 @@ __all__ = [
 ]
 
 # Bump when any descriptor changes meaning, so old models are refused on new data.
-DESCRIPTOR_VERSION = "5"
+DESCRIPTOR_VERSION = "6"
 _TINY = 1e-30
 
 
@@ -183,11 +183,17 @@ _CONTOUR = [
     (
         "sweep_path_excess_db",
         "dB",
-        "mean excess over the noise floor (each cell clipped to 0..20 dB) along the best straight "
-        "sweep of 0.3 window lengths through the window's spectrogram",
+        "mean excess over the noise floor (each cell clipped to 0..20 dB, plus 1 % of it clipped to "
+        "0..60 dB) along the best straight sweep of 0.3 window lengths through the window's spectrogram",
     ),
     ("sweep_path_rate_hz_per_s", "Hz/s", "frequency change per second of that best straight sweep"),
     ("sweep_path_centre_hz", "Hz", "frequency of that sweep at its midpoint"),
+    (
+        "sweep_path_long_excess_db",
+        "dB",
+        "the same mean excess along the best straight sweep of 0.6 window lengths",
+    ),
+    ("sweep_path_long_rate_hz_per_s", "Hz/s", "frequency change per second of that long sweep"),
 ]
 _ENERGY = [
     ("band_level_db", "dB re 1 µPa", "rms SPL in the analysis band over the window"),
@@ -382,7 +388,9 @@ def describe_windows(
     )
     contour[none] = 0.0
     contour[none, 11] = np.max(exc[none], axis=1) if np.any(none) else 0.0
-    contour = np.concatenate([contour, _sweep_path(excess_db, f, first, n_w, settings)], axis=1)
+    short = _sweep_path(excess_db, f, first, n_w, settings, _PATH_SHARE)
+    long = _sweep_path(excess_db, f, first, n_w, settings, _LONG_PATH_SHARE)
+    contour = np.concatenate([contour, short, long[:, :2]], axis=1)
 
     # --- band energy --------------------------------------------------------------
     band_p = p_lin.sum(axis=0) * df  # µPa² per frame
@@ -484,12 +492,26 @@ def _patch_excess_db(
 #: cell's excess (dB): a transient of one frame cannot outweigh a whole faint sweep.
 _PATH_SHARE = 0.3
 _PATH_CAP_DB = 20.0
+#: The long paths, twice as long: a call at least as long fills them as it fills the short
+#: ones, a sweep or transient shorter than the long path fills only part of it and stands
+#: lower along it, so the two paths together tell a call's length.
+_LONG_PATH_SHARE = 0.6
 #: Largest number of sweep rates on each side of zero.
 _PATH_RATES = 10
+#: Each cell also counts this share of its excess up to _PATH_SOFT_DB (a soft cap): paths
+#: through a loud call all reach the cap, and without it the slowest of them won, so a
+#: loud call crossed by a louder slow one took the slow one's rate.
+_PATH_SOFT_SHARE = 0.01
+_PATH_SOFT_DB = 60.0
 
 
 def _sweep_path(
-    excess_db: np.ndarray, frequency_hz: np.ndarray, first: np.ndarray, n_w: int, settings: DescriptorSettings
+    excess_db: np.ndarray,
+    frequency_hz: np.ndarray,
+    first: np.ndarray,
+    n_w: int,
+    settings: DescriptorSettings,
+    share: float = _PATH_SHARE,
 ) -> np.ndarray:
     """Best mean excess along a straight sweep in each window, its rate and centre.
 
@@ -503,16 +525,31 @@ def _sweep_path(
     path starting on one of every other frame from its first and ending inside it. The loops
     run over rates and path points (a few hundred per block), never over frames.
 
+    Each cell counts its excess clipped to 0..``_PATH_CAP_DB`` plus ``_PATH_SOFT_SHARE`` of
+    it clipped to 0..``_PATH_SOFT_DB``, so that of the paths a loud call fills to the cap
+    the loudest wins.
+
+    Parameters
+    ----------
+    excess_db : np.ndarray [shape=(n_bins, n_frames)], dB, PSD over the noise floor
+    frequency_hz : np.ndarray [shape=(n_bins,)], Hz, the bins' centres (evenly spaced)
+    first : np.ndarray [shape=(n_windows,)], int, each window's first frame
+    n_w : int, frames per window
+    settings : DescriptorSettings, the grid (frame hop and window in s, band in Hz)
+    share : float, window lengths; the path's length (0.3: the short paths, 0.6: the long)
+
     Returns
     -------
     np.ndarray [shape=(n_windows, 3)]: mean excess (dB), rate (Hz/s), midpoint frequency (Hz)
     """
     hop = settings.frame_hop_s
     df = float(frequency_hz[1] - frequency_hz[0])
-    stride, points, step = _path_geometry(settings, n_w, df)
+    stride, points, step = _path_geometry(settings, n_w, df, share)
     span = stride * (points - 1)  # frames from a path's first point to its last
     duration = span * hop
-    e = np.clip(excess_db, 0.0, _PATH_CAP_DB).astype(np.float32)
+    e = (np.clip(excess_db, 0.0, _PATH_CAP_DB) + _PATH_SOFT_SHARE * np.clip(excess_db, 0.0, _PATH_SOFT_DB)).astype(
+        np.float32
+    )
     f = np.asarray(frequency_hz, dtype=np.float64)
     if e.shape[0] % 2:
         # An odd last bin stands alone: it is its own pair, centred on itself.
@@ -537,9 +574,9 @@ def _sweep_path(
     for parity in np.unique(first % stride):
         sub = np.ascontiguousarray(ep[:, parity::stride])
         n_start = sub.shape[1] - (points - 1)
-        # Slowest rates first, so that where paths from one start tie (a loud call whose
-        # cells all reach the cap) the rate nearest zero is kept (argmax takes the first
-        # maximum); between starts, the earliest best start is taken.
+        # Slowest rates first, so that where paths from one start still tie (the soft share
+        # settles most ties at the cap) the rate nearest zero is kept (argmax takes the
+        # first maximum); between starts, the earliest best start is taken.
         tops = np.empty((order.size, n_start), np.float32)
         acc = np.empty((n_f, n_start), np.float32)
         for i, r in enumerate(order):
@@ -571,7 +608,9 @@ def _sweep_path(
     return out
 
 
-def _path_geometry(settings: DescriptorSettings, n_w: int, df: float) -> tuple[int, int, float]:
+def _path_geometry(
+    settings: DescriptorSettings, n_w: int, df: float, share: float = _PATH_SHARE
+) -> tuple[int, int, float]:
     """Frames between a sweep path's points, its number of points, and its rate step (Hz/s).
 
     Neighbouring rates' ends lie two coarse bins (of two grid bins each) apart, so any
@@ -579,7 +618,7 @@ def _path_geometry(settings: DescriptorSettings, n_w: int, df: float) -> tuple[i
     """
     hop = settings.frame_hop_s
     stride = 2 if n_w >= 9 else 1
-    points = int(round(_PATH_SHARE * settings.window_s / (stride * hop))) + 1
+    points = int(round(share * settings.window_s / (stride * hop))) + 1
     points = int(min(max(points, 2), (n_w - 1) // stride + 1))
     duration = stride * (points - 1) * hop  # from a path's first point to its last, s
     return stride, points, 2.0 * (2.0 * df) / max(duration, hop)

@@ -181,6 +181,7 @@ def test_every_descriptor_of_the_table_is_covered_here():
         "trace_duration_s", "trace_fit_rms_hz", "trace_excess_db", "band_level_db", "noise_level_db", "snr_db",
         "peak_to_peak_db", "psd_evenness", "excess_centroid_hz", "peak_run_width_hz", "excess_core_duration_s",
         "sweep_path_excess_db", "sweep_path_rate_hz_per_s", "sweep_path_centre_hz",
+        "sweep_path_long_excess_db", "sweep_path_long_rate_hz_per_s",
     }  # fmt: skip
     names = {n for n, _, _ in descriptor_table(SETTINGS)}
     # Sub-band levels, excesses and peak excesses, and the patch cells, are tested below
@@ -263,6 +264,12 @@ PATH_S = 0.6
 PATH_POINTS = 7
 PATH_RATE_STEP = 2 * 2 * DF / PATH_S
 PATH_CAP_DB = 20.0
+PATH_SOFT_SHARE, PATH_SOFT_DB = 0.01, 60.0  # each cell also counts 1 % of its excess up to 60 dB
+
+
+def _path_cell(excess_db: float) -> float:
+    """What one cell of a given excess (dB) adds to a path: capped, plus the soft share."""
+    return min(max(excess_db, 0.0), PATH_CAP_DB) + PATH_SOFT_SHARE * min(max(excess_db, 0.0), PATH_SOFT_DB)
 
 
 def test_down_sweep_best_path_rate_and_midpoint(scene_a):
@@ -283,14 +290,16 @@ def test_down_sweep_best_path_rate_and_midpoint(scene_a):
 def test_path_along_a_steady_tone_is_its_bins_snr_up_to_the_cap(scene_a):
     # A steady tone is a path of rate 0 at its frequency; each cell stands
     # 10 log10(10^(s/10) + 1) dB over the floor (as for trace_excess_db above), clipped at
-    # 20 dB, so the path's mean is that (15 dB tone: 15.1 dB) or the cap (25 and 30 dB tones:
-    # every cell above it, exactly 20). Tolerance as for trace_excess_db (2 dB) plus 0.5 dB
-    # for the best of the paths being taken (their means scatter by about 1 dB / sqrt(7)).
+    # 20 dB, plus 1 % of it, so the path's mean is that (15 dB tone: 15.3 dB) or the cap and
+    # 1 % of the tone's excess (25 and 30 dB tones: every cell above the cap, 20.25 and
+    # 20.30 dB; a cell's scatter of a dB or two moves its 1 % by 0.02). Tolerance as for
+    # trace_excess_db (2 dB) plus 0.5 dB for the best of the paths being taken (their means
+    # scatter by about 1 dB / sqrt(7)).
     for t0, f, snr in EXCESS_TONES:
         row = _row(scene_a, t0 + 0.5)
-        expected = min(10.0 * np.log10(10.0 ** (snr / 10.0) + 1.0), PATH_CAP_DB)
+        expected = _path_cell(10.0 * np.log10(10.0 ** (snr / 10.0) + 1.0))
         if snr >= 25:
-            assert row["sweep_path_excess_db"] == pytest.approx(PATH_CAP_DB, abs=1e-3), f"{snr} dB"
+            assert row["sweep_path_excess_db"] == pytest.approx(expected, abs=0.03), f"{snr} dB"
         else:
             assert row["sweep_path_excess_db"] == pytest.approx(expected, abs=2.5), f"{snr} dB"
         assert row["sweep_path_rate_hz_per_s"] == 0.0
@@ -320,6 +329,70 @@ def test_faint_sweep_stands_out_along_its_path_not_in_its_strongest_cell(scene_a
     assert max(strongest(r) for r in sweep_rows) < max(quiet)
     rates = [r["sweep_path_rate_hz_per_s"] for r in sweep_rows if r["sweep_path_excess_db"] == best]
     assert rates[0] == pytest.approx((f1 - f0) / dur, abs=PATH_RATE_STEP / 2)
+
+
+# The long paths: 0.6 window lengths = 1.2 s, points every other frame (13 points), rates
+# 2 coarse bins over 1.2 s = 33.3 Hz/s apart.
+LONG_PATH_S = 1.2
+LONG_PATH_POINTS = 13
+LONG_PATH_RATE_STEP = 2 * 2 * DF / LONG_PATH_S
+
+
+def test_long_path_fills_with_a_call_as_long_as_it_and_partly_with_a_shorter_one(scene_a):
+    # Two loud 300 Hz tone bursts (far above the cap in every cell they cover): the 1.6 s
+    # burst holds a whole 1.2 s path of rate 0, so its long path's mean is that of the same
+    # tone's cells as its short path's, above the cap. The 0.8 s burst covers at most 10 of
+    # the long path's 13 points (0.8 s, points 0.1 s apart, plus one frame of smear at each
+    # end) and at least 7 (8 points span 0.7 s), so the long mean lies between 7 of those
+    # cells over 13 and 10 of them plus 3 of the loudest noise any quiet window's long path
+    # found: a call shorter than the long path stands lower along it than along the short one.
+    (t_short, d_short), (t_long, d_long) = BURSTS[2], BURSTS[1]
+    assert d_short < LONG_PATH_S < d_long
+    # The windows starting on the half-second before each burst hold it whole.
+    whole = _row(scene_a, np.floor(t_long / 0.5) * 0.5)
+    tone_cell = whole["sweep_path_excess_db"]
+    assert tone_cell > PATH_CAP_DB
+    assert whole["sweep_path_long_excess_db"] == pytest.approx(tone_cell, abs=0.05)
+    assert whole["sweep_path_long_rate_hz_per_s"] == 0.0
+    quiet = max(_row(scene_a, ws)["sweep_path_long_excess_db"] for ws in np.arange(*QUIET, 0.5))
+    part = _row(scene_a, np.floor(t_short / 0.5) * 0.5)
+    assert part["sweep_path_excess_db"] == pytest.approx(tone_cell, abs=0.05)
+    low, high = 7 * PATH_CAP_DB / LONG_PATH_POINTS, (10 * tone_cell + 3 * quiet) / LONG_PATH_POINTS
+    assert low <= part["sweep_path_long_excess_db"] <= high
+
+
+def test_long_path_follows_a_long_faint_sweep(scene_a):
+    # The faint sweep of 120 Hz/s lasts 1.5 s, longer than the long path: along it the
+    # long path stands above every noise-only window's (the same matched-filter sum as the
+    # short path's, over 13 cells) and its rate is the sweep's within half a long rate step.
+    t0, dur, f0, f1, _ = FAINT_SWEEP
+    noise = [_row(scene_a, ws)["sweep_path_long_excess_db"] for ws in np.arange(*QUIET, 0.5)]
+    rows = [_row(scene_a, ws) for ws in np.arange(t0 + dur - SETTINGS.window_s, t0 + 1e-9, 0.5)]
+    best = max(rows, key=lambda r: r["sweep_path_long_excess_db"])
+    assert best["sweep_path_long_excess_db"] > max(noise) + 1.0
+    assert best["sweep_path_long_rate_hz_per_s"] == pytest.approx((f1 - f0) / dur, abs=LONG_PATH_RATE_STEP / 2)
+
+
+def test_paths_filled_to_the_cap_go_to_the_louder_call(tmp_path):
+    # A steady tone 25 dB over the floor in its bin and a down-sweep of -150 Hz/s far
+    # louder (as DOWN_SWEEP) in the same windows: both fill a 0.6 s path with cells above
+    # the 20 dB cap. The soft share (1 % of each cell's excess) gives the path to the
+    # louder call: its rate within half a rate step of the sweep's, not the tone's 0 Hz/s,
+    # and a mean above the tone's own (20.25 dB). The 1 s sweep does not fill a 1.2 s
+    # path, so the long path keeps to the tone.
+    scene = Scene(30.0, seed=13)
+    tone_snr = 25.0
+    scene.tone(8.0, 6.0, 200.0, _amplitude_for_bin_snr(tone_snr))
+    t0, dur, rate = 10.5, 1.0, -150.0
+    scene.sweep(t0, dur, 250.0, rate, 0.0, 1e5)
+    found = scene.describe(tmp_path, SETTINGS, "crossing.wav")
+    tone_path = _path_cell(10.0 * np.log10(10.0 ** (tone_snr / 10.0) + 1.0))
+    for ws in (9.5, 10.0, 10.5):  # windows that hold the whole sweep and the tone
+        row = _row(found, ws)
+        assert row["sweep_path_rate_hz_per_s"] == pytest.approx(rate, abs=PATH_RATE_STEP / 2), ws
+        assert row["sweep_path_excess_db"] > tone_path, ws
+        assert row["sweep_path_long_rate_hz_per_s"] == 0.0, ws
+        assert row["sweep_path_long_excess_db"] == pytest.approx(tone_path, abs=0.03), ws
 
 
 def test_fast_sweep_in_a_short_window_on_a_high_band_keeps_its_rate(tmp_path):

@@ -36,9 +36,11 @@ def test_decoys_copy_only_strong_swept_target_rows_and_change_only_their_rates()
     rate = [names.index(n) for n in SWEEP_RATES]
     X[:, path] = np.linspace(0.0, 39.0, 40)  # dB over the floor
     # Path rates: whole steps, from -3 to +4 (0 and one step: a tone, a slow drift); the
-    # trace's rate a little off the path's, as measured.
+    # trace's rate and the long path's (on steps half as large) a little off the path's,
+    # as measured.
     X[:, rate[1]] = step * (np.arange(40) % 8 - 3)
     X[:, rate[0]] = X[:, rate[1]] + rng.uniform(-0.3, 0.3, 40) * step
+    X[:, rate[2]] = X[:, rate[1]] + rng.uniform(-0.3, 0.3, 40) * step / 2
     y = np.array(["up", BACKGROUND] * 20, dtype=object)
     config = TrainingConfig(slow_decoy_factor=0.5, slow_decoy_min_excess_db=15.0)
     rows, decoys = slow_decoys(X, y, names, "up", config, step)
@@ -52,7 +54,7 @@ def test_decoys_copy_only_strong_swept_target_rows_and_change_only_their_rates()
     np.testing.assert_array_equal(decoys[:, other], X[rows][:, other])
     # A flat tone never gives a decoy, however loud: halved, it would be its own call.
     tone = X.copy()
-    tone[:, rate] = rng.uniform(-0.5, 0.5, (40, 2)) * step
+    tone[:, rate] = rng.uniform(-0.5, 0.5, (40, len(rate))) * step
     assert slow_decoys(tone, y, names, "up", config, step)[0].size == 0
     # Off: none.
     rows, decoys = slow_decoys(X, y, names, "up", replace(config, slow_decoy_factor=0.0), step)
