@@ -388,8 +388,9 @@ def describe_windows(
     )
     contour[none] = 0.0
     contour[none, 11] = np.max(exc[none], axis=1) if np.any(none) else 0.0
-    short = _sweep_path(excess_db, f, first, n_w, settings, _PATH_SHARE)
-    long = _sweep_path(excess_db, f, first, n_w, settings, _LONG_PATH_SHARE)
+    cells, centre_hz = _path_cells(excess_db, f)  # once for both path lengths
+    short = _sweep_path(cells, centre_hz, df, first, n_w, settings, _PATH_SHARE)
+    long = _sweep_path(cells, centre_hz, df, first, n_w, settings, _LONG_PATH_SHARE)
     contour = np.concatenate([contour, short, long[:, :2]], axis=1)
 
     # --- band energy --------------------------------------------------------------
@@ -505,9 +506,36 @@ _PATH_SOFT_SHARE = 0.01
 _PATH_SOFT_DB = 60.0
 
 
+def _path_cells(excess_db: np.ndarray, frequency_hz: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The cells the sweep paths add up: each bin's excess clipped to 0..``_PATH_CAP_DB``
+    plus ``_PATH_SOFT_SHARE`` of it clipped to 0..``_PATH_SOFT_DB``, the larger of each
+    pair of bins (a tolerance for curvature and jitter).
+
+    Parameters
+    ----------
+    excess_db : np.ndarray [shape=(n_bins, n_frames)], dB, PSD over the noise floor
+    frequency_hz : np.ndarray [shape=(n_bins,)], Hz, the bins' centres (evenly spaced)
+
+    Returns
+    -------
+    cells : np.ndarray [shape=(ceil(n_bins / 2), n_frames)], float32, dB
+    centre_hz : np.ndarray [shape=(ceil(n_bins / 2),)], Hz, each pair's centre
+    """
+    e = (np.clip(excess_db, 0.0, _PATH_CAP_DB) + _PATH_SOFT_SHARE * np.clip(excess_db, 0.0, _PATH_SOFT_DB)).astype(
+        np.float32
+    )
+    f = np.asarray(frequency_hz, dtype=np.float64)
+    if e.shape[0] % 2:
+        # An odd last bin stands alone: it is its own pair, centred on itself.
+        e = np.concatenate([e, e[-1:]])
+        f = np.concatenate([f, f[-1:]])
+    return np.maximum(e[0::2], e[1::2]), 0.5 * (f[0::2] + f[1::2])
+
+
 def _sweep_path(
-    excess_db: np.ndarray,
-    frequency_hz: np.ndarray,
+    cells: np.ndarray,
+    centre_hz: np.ndarray,
+    df: float,
     first: np.ndarray,
     n_w: int,
     settings: DescriptorSettings,
@@ -526,13 +554,14 @@ def _sweep_path(
     run over rates and path points (a few hundred per block), never over frames.
 
     Each cell counts its excess clipped to 0..``_PATH_CAP_DB`` plus ``_PATH_SOFT_SHARE`` of
-    it clipped to 0..``_PATH_SOFT_DB``, so that of the paths a loud call fills to the cap
-    the loudest wins.
+    it clipped to 0..``_PATH_SOFT_DB`` (:func:`_path_cells`), so that of the paths a loud
+    call fills to the cap the loudest wins.
 
     Parameters
     ----------
-    excess_db : np.ndarray [shape=(n_bins, n_frames)], dB, PSD over the noise floor
-    frequency_hz : np.ndarray [shape=(n_bins,)], Hz, the bins' centres (evenly spaced)
+    cells : np.ndarray [shape=(n_pairs, n_frames)], float32, dB, from :func:`_path_cells`
+    centre_hz : np.ndarray [shape=(n_pairs,)], Hz, the pairs' centres
+    df : float, Hz, the spacing of the grid's bins (half a pair's)
     first : np.ndarray [shape=(n_windows,)], int, each window's first frame
     n_w : int, frames per window
     settings : DescriptorSettings, the grid (frame hop and window in s, band in Hz)
@@ -543,21 +572,10 @@ def _sweep_path(
     np.ndarray [shape=(n_windows, 3)]: mean excess (dB), rate (Hz/s), midpoint frequency (Hz)
     """
     hop = settings.frame_hop_s
-    df = float(frequency_hz[1] - frequency_hz[0])
     stride, points, step = _path_geometry(settings, n_w, df, share)
     span = stride * (points - 1)  # frames from a path's first point to its last
     duration = span * hop
-    e = (np.clip(excess_db, 0.0, _PATH_CAP_DB) + _PATH_SOFT_SHARE * np.clip(excess_db, 0.0, _PATH_SOFT_DB)).astype(
-        np.float32
-    )
-    f = np.asarray(frequency_hz, dtype=np.float64)
-    if e.shape[0] % 2:
-        # An odd last bin stands alone: it is its own pair, centred on itself.
-        e = np.concatenate([e, e[-1:]])
-        f = np.concatenate([f, f[-1:]])
-    e = np.maximum(e[0::2], e[1::2])
     df2 = 2.0 * df
-    centre_hz = 0.5 * (f[0::2] + f[1::2])
     # Rates reach the fastest sweep of a call (as the trace's jumps do), at most
     # _PATH_RATES on each side. The 1e-9 keeps a limit that is a whole number of steps from rounding one step short.
     n_side = int(min(_PATH_RATES, np.floor(_fastest_sweep_hz_per_s(settings) / step + 1e-9)))
@@ -565,8 +583,8 @@ def _sweep_path(
     lag_s = np.arange(points) * stride * hop
     shifts = np.rint(rates[:, None] * lag_s[None, :] / df2).astype(np.int64)  # (n_rates, points)
     pad = int(np.abs(shifts).max())
-    n_f = e.shape[0]
-    ep = np.concatenate([np.zeros((pad, e.shape[1]), np.float32), e, np.zeros((pad, e.shape[1]), np.float32)])
+    n_f, n_t = cells.shape
+    ep = np.concatenate([np.zeros((pad, n_t), np.float32), cells, np.zeros((pad, n_t), np.float32)])
     order = np.argsort(np.abs(rates), kind="stable")
     out = np.empty((first.size, 3))
     # A path's points lie `stride` frames apart, so they all fall on frames of one parity;

@@ -1,6 +1,6 @@
 """The vectorised sweep path search against a plain loop over windows, starts, rates and bins.
 
-``_sweep_path`` adds cells rate by rate over whole blocks and picks each window's best
+``_path_cells`` and ``_sweep_path`` add cells rate by rate over whole blocks and picks each window's best
 path afterwards; this loop does what its docstring says, one path at a time, on random
 excesses (some above the cap, an odd number of bins, windows starting on frames of both
 parities), for the short and the long paths. The reference is the definition, written
@@ -62,7 +62,8 @@ def test_vectorised_path_search_matches_the_loop(share):
     # Continuous values (no ties between paths), a sixth of them above the cap.
     excess = rng.uniform(-5.0, 24.0, size=(frequency_hz.size, n_frames)).astype(np.float32)
     first = np.arange(0, n_frames - n_w + 1, 3)  # a hop of 3 frames: starts of both parities
-    got = d._sweep_path(excess, frequency_hz, first, n_w, SETTINGS, share)
+    cells, centre_hz = d._path_cells(excess, frequency_hz)
+    got = d._sweep_path(cells, centre_hz, float(frequency_hz[1] - frequency_hz[0]), first, n_w, SETTINGS, share)
     want = _reference(excess, frequency_hz, first, n_w, SETTINGS, share)
     np.testing.assert_allclose(got[:, 0], want[:, 0], rtol=1e-5)
     np.testing.assert_array_equal(got[:, 1], want[:, 1])
