@@ -23,10 +23,9 @@ then where the AP goes: how many target calls got a detection at any confidence 
 share of all calls bounds the AP), and the AP with the false detections on each in-band
 confuser's calls taken out (`ap_losses`).
 `--json OUT` writes every figure. The default is nine seeds: the AP's spread between seeds
-(standard deviation about 0.045) leaves the mean of three a standard error of about 0.026,
-the mean of nine 0.015. A seed
-takes 1-1.5 minutes on 2 cores (scenario 15 s,
-training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine).
+(standard deviation 0.044 on 2026-12-03) leaves the mean of three a standard error of
+about 0.026, the mean of nine 0.015. A seed takes 1-1.5 minutes on 2 cores (scenario
+15 s, training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine).
 """
 
 from __future__ import annotations
