@@ -24,8 +24,9 @@ share of all calls bounds the AP), and the AP with the false detections on each 
 confuser's calls taken out (`ap_losses`).
 `--json OUT` writes every figure. The default is nine seeds: the AP's spread between seeds
 (standard deviation 0.044 on 2026-12-03) leaves the mean of three a standard error of
-about 0.026, the mean of nine 0.015. A seed takes 1-1.5 minutes on 2 cores (scenario
-15 s, training 19 s, scoring 14-22 s, evaluation 14-20 s; 2026-12-02, a shared machine).
+about 0.026, the mean of nine 0.015. A seed takes about a minute on 2 cores (44-56 s with its
+scenario cached, training 21-30 s, scoring 8-10 s; 2026-12-03, nothing else running; the
+scenario, written the first time, took 15 s on 2026-12-02).
 """
 
 from __future__ import annotations

@@ -179,7 +179,7 @@ def psd_spectrogram(
     # and written straight into the double-precision buffer the FFT reads: one pass, no
     # float32 copy.
     segments = np.empty(frames_in.shape, dtype=np.float64)
-    np.multiply(frames_in, window, out=segments, dtype=np.float32, casting="unsafe")
+    np.multiply(frames_in, window, out=segments, dtype=np.float32)
     # numpy transforms float32 in double precision and rounds the result to complex64;
     # doing that explicitly gives the same values at half the cost, and rounding only
     # the band's bins saves the rest. (scipy's single-precision FFT is faster still, but

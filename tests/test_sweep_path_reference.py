@@ -68,3 +68,19 @@ def test_vectorised_path_search_matches_the_loop(share):
     np.testing.assert_allclose(got[:, 0], want[:, 0], rtol=1e-5)
     np.testing.assert_array_equal(got[:, 1], want[:, 1])
     np.testing.assert_allclose(got[:, 2], want[:, 2], rtol=1e-9)
+
+
+def test_path_without_its_midpoint_keeps_excess_and_rate():
+    # describe_windows asks the long path for its excess and rate only: skipping the
+    # midpoint must leave both exactly as the full search gives them.
+    rng = np.random.default_rng(6)
+    frequency_hz = SETTINGS.grid.frequency_hz
+    n_w = SETTINGS.frames_per_window
+    excess = rng.uniform(-5.0, 24.0, size=(frequency_hz.size, 8 * n_w)).astype(np.float32)
+    first = np.arange(0, 7 * n_w + 1, 3)
+    cells, centre_hz = d._path_cells(excess, frequency_hz)
+    df = float(frequency_hz[1] - frequency_hz[0])
+    full = d._sweep_path(cells, centre_hz, df, first, n_w, SETTINGS, d._LONG_PATH_SHARE)
+    bare = d._sweep_path(cells, centre_hz, df, first, n_w, SETTINGS, d._LONG_PATH_SHARE, centre=False)
+    np.testing.assert_array_equal(bare[:, :2], full[:, :2])
+    assert np.isnan(bare[:, 2]).all() and np.isfinite(full[:, 2]).all()
